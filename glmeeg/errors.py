@@ -1,0 +1,39 @@
+"""glmeeg's own exception types.
+
+Every error a user can cause by a file, a setting or a table is a :class:`GlmeegError`. Its
+message is one line that names the file, subject, column or key at fault and what was expected.
+The command-line interface catches these once, prints the line and exits with code 2.
+"""
+
+from __future__ import annotations
+
+__all__ = ["GlmeegError", "DesignFileError", "StudyError", "FormulaError", "ContrastError",
+           "ModelError"]
+
+
+class GlmeegError(ValueError):
+    """Base class of every input error glmeeg reports to its user."""
+
+    def __init__(self, message: str) -> None:
+        # One line, always: a message built from user data must not break the CLI's contract.
+        super().__init__(" ".join(str(message).split()))
+
+
+class DesignFileError(GlmeegError):
+    """The design file cannot be read or does not follow the schema."""
+
+
+class StudyError(GlmeegError):
+    """A study file (trials, subjects, channels, epoch arrays) is missing or malformed."""
+
+
+class FormulaError(GlmeegError):
+    """A formula cannot be turned into a usable design matrix."""
+
+
+class ContrastError(GlmeegError):
+    """A contrast does not fit the design it is applied to."""
+
+
+class ModelError(GlmeegError):
+    """The model cannot be estimated with these data (too few subjects, no residual df ...)."""

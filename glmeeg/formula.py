@@ -1,0 +1,341 @@
+"""Design matrices and contrasts from formulas (the only module that imports patsy).
+
+The subject-level design is built once on the pooled trials table, so every subject gets the
+same columns and the same factor levels; it is then applied to each subject's rows. The group
+design is built the same way on the subjects table. Contrasts are given by column name, by a
+patsy constraint string (``"urgency[T.high] - urgency[T.medium]"``) or as numeric vectors; a
+list of several is a joint contrast (one row each).
+
+Formulas come from design files that labs share, and patsy evaluates formula terms as Python.
+Before anything is evaluated, every term is parsed and checked: only table columns, numbers,
+strings and the functions in :data:`FORMULA_FUNCTIONS` may appear; attribute access, subscripts,
+dunder names and calls of anything else are refused.
+"""
+
+from __future__ import annotations
+
+import ast
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+import patsy
+
+from .errors import ContrastError, FormulaError
+
+__all__ = ["FORMULA_FUNCTIONS", "Design", "DesignMatrix", "ContrastMatrix", "build_design",
+           "design_matrix", "contrast_matrix", "formula_variables"]
+
+# Functions a formula may call. patsy's own stateful transforms (C, center, standardize, scale,
+# I, Q, bs) and coding schemes are added by patsy itself; the numeric ones are ours.
+_PATSY_BUILTINS = ("C", "I", "Q", "center", "standardize", "scale", "bs",
+                   "Treatment", "Sum", "Poly", "Helmert", "Diff")
+_NUMERIC = {"log": np.log, "log10": np.log10, "log2": np.log2, "exp": np.exp, "sqrt": np.sqrt,
+            "abs": np.abs}
+FORMULA_FUNCTIONS: tuple[str, ...] = _PATSY_BUILTINS + tuple(_NUMERIC)
+
+_ALLOWED_NODES = (ast.Expression, ast.Name, ast.Load, ast.Call, ast.Constant, ast.BinOp,
+                  ast.UnaryOp, ast.keyword, ast.List, ast.Tuple, ast.operator, ast.unaryop)
+
+
+def _factor_codes(formula: str, *, where: str) -> list[str]:
+    try:
+        desc = patsy.ModelDesc.from_formula(formula)
+    except patsy.PatsyError as e:
+        raise FormulaError(f"{where}: cannot parse formula {formula!r}: {str(e).splitlines()[0]}") from None
+    if desc.lhs_termlist:
+        raise FormulaError(f"{where}: formula {formula!r} has a left-hand side; give only the "
+                           "right-hand side (the EEG data are the response)")
+    return [f.code for term in desc.rhs_termlist for f in term.factors]
+
+
+def formula_variables(formula: str, columns, *, where: str, source: str) -> tuple[str, ...]:
+    """Check a formula's terms and return the table columns it uses, in order of appearance.
+
+    Raises
+    ------
+    FormulaError
+        The formula does not parse, has a left-hand side, uses a name that is not a column of
+        ``source`` nor an allowed function, or contains anything other than names, numbers,
+        strings, operators and calls of allowed functions (no attribute access, subscripts,
+        dunder names, lambdas or comprehensions).
+    """
+    columns = set(map(str, columns))
+    used: list[str] = []
+    for code in _factor_codes(formula, where=where):
+        try:
+            tree = ast.parse(code, mode="eval")
+        except SyntaxError:
+            raise FormulaError(f"{where}: term {code!r} is not a valid expression") from None
+        for node in ast.walk(tree):
+            if not isinstance(node, _ALLOWED_NODES):
+                raise FormulaError(f"{where}: term {code!r} uses {type(node).__name__.lower()} "
+                                   "syntax, which formulas may not contain (allowed: column names, "
+                                   f"numbers, operators and the functions {', '.join(FORMULA_FUNCTIONS)})")
+            if isinstance(node, ast.Call) and not (isinstance(node.func, ast.Name)
+                                                   and node.func.id in FORMULA_FUNCTIONS):
+                what = node.func.id if isinstance(node.func, ast.Name) else "an expression"
+                raise FormulaError(f"{where}: term {code!r} calls {what}, which is not an allowed "
+                                   f"function (allowed: {', '.join(FORMULA_FUNCTIONS)})")
+            if isinstance(node, ast.Name):
+                if node.id.startswith("__"):
+                    raise FormulaError(f"{where}: term {code!r} uses the reserved name {node.id!r}")
+                if node.id in FORMULA_FUNCTIONS:
+                    continue
+                if node.id not in columns:
+                    raise FormulaError(f"{where}: {node.id!r} is not a column of {source} "
+                                       f"(columns: {', '.join(sorted(columns))})")
+                if node.id not in used:
+                    used.append(node.id)
+    return tuple(used)
+
+
+@dataclass(frozen=True)
+class Design:
+    """A formula turned into a fixed set of design columns.
+
+    Attributes
+    ----------
+    formula : str
+    column_names : tuple of str
+    variables : tuple of str
+        Table columns the formula uses.
+    factors : dict
+        Categorical variables and their levels, reference level first.
+    source : str
+        Name of the table the design was built on, for messages.
+    """
+
+    formula: str
+    column_names: tuple[str, ...]
+    variables: tuple[str, ...]
+    factors: dict[str, tuple[str, ...]]
+    source: str
+    _info: patsy.DesignInfo = field(repr=False, compare=False)
+
+
+@dataclass(frozen=True)
+class DesignMatrix:
+    """One design matrix: ``matrix`` has one row per kept table row (``kept`` marks them)."""
+
+    matrix: np.ndarray
+    kept: np.ndarray
+    column_names: tuple[str, ...]
+    condition_number: float
+
+    @property
+    def n_dropped(self) -> int:
+        return int((~self.kept).sum())
+
+
+@dataclass(frozen=True)
+class ContrastMatrix:
+    """Contrast weights, shape ``(rows, columns)``, with one label per row."""
+
+    matrix: np.ndarray
+    labels: tuple[str, ...]
+
+    @property
+    def n_rows(self) -> int:
+        return self.matrix.shape[0]
+
+
+def _level_text(x) -> str:
+    if isinstance(x, (float, np.floating)) and float(x).is_integer():
+        return str(int(x))
+    return str(x)
+
+
+def _prepare(table: pd.DataFrame, variables: tuple[str, ...], levels: dict[str, list[str]],
+             *, source: str, factors: dict[str, tuple[str, ...]] | None = None) -> tuple[pd.DataFrame, dict]:
+    """Columns the formula uses, with factors as ordered categoricals and numbers as float64."""
+    out: dict[str, object] = {}
+    found: dict[str, tuple[str, ...]] = {}
+    for v in variables:
+        col = table[v]
+        known = (factors or {}).get(v)
+        if known is None and v in levels:
+            known = tuple(levels[v])
+        is_numeric = pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col)
+        if known is None and is_numeric:
+            out[v] = col.to_numpy(dtype=np.float64, na_value=np.nan)
+            continue
+        text = col.map(_level_text, na_action="ignore").astype(object)
+        text = text.where(col.notna(), None)
+        if known is None:
+            known = tuple(sorted({t for t in text if t is not None}))
+        else:
+            stray = sorted({t for t in text if t is not None and t not in known})
+            if stray:
+                raise FormulaError(f"{source}: column {v!r} has values {stray} that are not among "
+                                   f"its levels {list(known)}")
+        found[v] = known
+        out[v] = pd.Categorical(text.to_numpy(), categories=list(known))
+    return pd.DataFrame(out, index=table.index), found
+
+
+def _env():
+    return patsy.EvalEnvironment([dict(_NUMERIC)])
+
+
+def build_design(table: pd.DataFrame, formula: str, *, levels: dict[str, list[str]] | None = None,
+                 source: str, where: str) -> Design:
+    """Build the design of ``formula`` on a whole table (all subjects pooled).
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        Pooled trials table (or subjects table for the group design).
+    formula : str
+        Right-hand side of a patsy formula, e.g. ``"urgency + loudness_db"``.
+    levels : dict, optional
+        Level order per factor; the first level is the reference of treatment coding. Factors
+        without an entry use their sorted values.
+    source : str
+        Table name used in messages (``"trials.csv"``).
+    where : str
+        Setting name used in messages (``"subject_model.formula"``).
+
+    Raises
+    ------
+    FormulaError
+        Unsafe or unknown terms, level lists that miss values, a pooled design without usable
+        rows, or a rank-deficient pooled design.
+    """
+    levels = levels or {}
+    variables = formula_variables(formula, table.columns, where=where, source=source)
+    for v in levels:
+        if v not in table.columns:
+            raise FormulaError(f"{where.rsplit('.', 1)[0]}.levels: {v!r} is not a column of {source}")
+    data, factors = _prepare(table, variables, levels, source=source)
+    try:
+        frame = patsy.dmatrix(formula, data, eval_env=_env(), NA_action="drop", return_type="dataframe")
+    except patsy.PatsyError as e:
+        raise FormulaError(f"{where}: {str(e).splitlines()[0]}") from None
+    if frame.shape[0] == 0:
+        raise FormulaError(f"{where}: every row of {source} has a missing value in "
+                           f"{', '.join(variables)}")
+    design = Design(formula=formula, column_names=tuple(frame.columns), variables=variables,
+                    factors=factors, source=source, _info=frame.design_info)
+    _check_columns(frame.to_numpy(np.float64), design, who=f"{where} on the pooled {source}")
+    return design
+
+
+def _check_columns(X: np.ndarray, design: Design, *, who: str) -> float:
+    names = design.column_names
+    n, p = X.shape
+    zero = [names[j] for j in range(p) if not np.any(X[:, j])]
+    if zero:
+        raise FormulaError(f"{who}: design column(s) {', '.join(zero)} are all zero")
+    if "Intercept" in names:
+        const = [names[j] for j in range(p) if names[j] != "Intercept" and np.ptp(X[:, j]) == 0]
+        if const:
+            raise FormulaError(f"{who}: column(s) {', '.join(const)} are constant, so they cannot "
+                               "be told apart from the intercept")
+    if n < p:
+        raise FormulaError(f"{who}: {n} usable rows for {p} design columns")
+    s = np.linalg.svd(X, compute_uv=False)
+    tol = s[0] * max(n, p) * np.finfo(float).eps
+    rank = int((s > tol).sum())
+    if rank < p:
+        _, _, vt = np.linalg.svd(X)
+        null = vt[rank:]
+        involved = [names[j] for j in range(p) if np.abs(null[:, j]).max() > 1e-8]
+        raise FormulaError(f"{who}: the design is rank deficient (rank {rank} of {p} columns); "
+                           f"collinear columns: {', '.join(involved)}")
+    return float(s[0] / s[-1])
+
+
+def design_matrix(design: Design, table: pd.DataFrame, *, who: str) -> DesignMatrix:
+    """Apply a design to some rows of its table (one subject's trials, or the subjects).
+
+    Rows with a missing value in any variable of the formula are dropped and counted.
+
+    Raises
+    ------
+    FormulaError
+        Naming ``who``: no usable rows, a factor level absent, an all-zero or constant column,
+        fewer rows than columns, or a rank-deficient design.
+    """
+    data, _ = _prepare(table, design.variables, {}, source=design.source, factors=design.factors)
+    usable = data.notna().all(axis=1)
+    if not usable.any():
+        empty = [v for v in design.variables if data[v].isna().all()]
+        what = f"every value of {', '.join(empty)} is missing" if empty else \
+            f"every row has a missing value in {', '.join(design.variables)}"
+        raise FormulaError(f"{who}: no usable rows: {what}")
+    for v, lv in design.factors.items():
+        present = set(data.loc[usable, v].astype(object))
+        absent = [x for x in lv if x not in present]
+        if absent:
+            raise FormulaError(f"{who}: level(s) {', '.join(map(repr, absent))} of {v!r} have no "
+                               "usable rows; every level of the formula must be present")
+    try:
+        (frame,) = patsy.build_design_matrices([design._info], data, NA_action="drop",
+                                               return_type="dataframe")
+    except patsy.PatsyError as e:
+        raise FormulaError(f"{who}: {str(e).splitlines()[0]}") from None
+    kept = np.asarray(data.index.isin(frame.index))
+    X = np.ascontiguousarray(frame.to_numpy(np.float64))
+    cond = _check_columns(X, design, who=who)
+    return DesignMatrix(matrix=X, kept=kept, column_names=design.column_names, condition_number=cond)
+
+
+def _vector_label(v) -> str:
+    return "[" + ", ".join(f"{x:g}" for x in v) + "]"
+
+
+def contrast_matrix(design: Design, spec, *, where: str) -> ContrastMatrix:
+    """Turn a contrast setting into a weight matrix over ``design.column_names``.
+
+    Parameters
+    ----------
+    design : Design
+    spec : str, sequence of float, or list of those
+        A column name, a patsy constraint string (``"a - b"``; commas give several rows), a
+        numeric vector with one weight per column, or a list of these for a joint contrast.
+    where : str
+        Setting name for messages (``"test 'x'.subject_contrast"``).
+
+    Raises
+    ------
+    ContrastError
+        Unknown column names, wrong vector length, a zero row, a constraint with a non-zero
+        right-hand side, or linearly dependent rows.
+    """
+    names = design.column_names
+    items = [spec] if isinstance(spec, str) or (isinstance(spec, list) and spec
+                                                and all(isinstance(x, (int, float)) for x in spec)) else list(spec)
+    rows: list[np.ndarray] = []
+    labels: list[str] = []
+    for item in items:
+        if isinstance(item, str):
+            try:
+                lc = design._info.linear_constraint(item)
+            except (patsy.PatsyError, ValueError) as e:
+                raise ContrastError(f"{where}: {item!r} does not name design columns "
+                                    f"(columns: {', '.join(names)}); {str(e).splitlines()[0]}") from None
+            if np.any(lc.constants != 0):
+                raise ContrastError(f"{where}: {item!r} has a non-zero right-hand side; contrasts test "
+                                    "against zero")
+            parts = [s.strip() for s in item.split(",")] if lc.coefs.shape[0] > 1 else [item.strip()]
+            for r, lab in zip(lc.coefs, parts):
+                rows.append(np.asarray(r, dtype=float))
+                labels.append(lab)
+        else:
+            vec = np.asarray(item, dtype=float)
+            if vec.ndim != 1 or vec.size != len(names):
+                raise ContrastError(f"{where}: vector {list(np.ravel(vec))} has {vec.size} weights; "
+                                    f"the design has {len(names)} columns ({', '.join(names)})")
+            rows.append(vec)
+            labels.append(_vector_label(vec))
+    C = np.vstack(rows)
+    if not np.all(np.isfinite(C)):
+        raise ContrastError(f"{where}: weights must be finite numbers")
+    for lab, r in zip(labels, C):
+        if not np.any(r):
+            raise ContrastError(f"{where}: contrast {lab} has only zero weights")
+    if C.shape[0] > 1 and np.linalg.matrix_rank(C) < C.shape[0]:
+        raise ContrastError(f"{where}: the {C.shape[0]} contrasts of this joint test are linearly "
+                            "dependent; leave out the redundant ones")
+    return ContrastMatrix(matrix=C, labels=tuple(labels))

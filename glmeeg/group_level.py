@@ -1,0 +1,215 @@
+"""Group level: a GLM across subjects on their contrast estimates, at every point.
+
+The summary-statistics approach: each subject contributes its subject-level contrast
+estimate(s) at every point; the group design (one row per subject) is fitted by least squares
+at every point with one factorization. A single group contrast of a single subject contrast
+gives a t map; several group contrasts give an F map; several subject contrasts (a joint
+within-subject question such as "any effect of a three-level factor") give Hotelling's T² at
+every point, reported as its exact F transform.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Literal
+
+import numpy as np
+import scipy.special
+import scipy.stats
+
+from .errors import ModelError
+from .subject_level import fit_ols
+
+__all__ = ["GroupStatistics", "group_test", "p_values", "hedges_factor"]
+
+Alternative = Literal["two-sided", "greater", "less"]
+ALTERNATIVES = ("two-sided", "greater", "less")
+
+
+@dataclass(frozen=True)
+class GroupStatistics:
+    """Group-level statistics at every point.
+
+    Attributes
+    ----------
+    kind : {"t", "F"}
+    estimate : numpy.ndarray
+        ``(rows, n_points)``: the group contrast of the subject contrast(s); one row for t.
+    standard_error : numpy.ndarray
+        ``(n_points,)`` standard error of the estimate for t; NaN for F.
+    statistic : numpy.ndarray
+        ``(n_points,)`` t or F.
+    df : tuple of float
+        ``(df_numerator, df_denominator)``; ``(1, df)`` for t.
+    p : numpy.ndarray
+        ``(n_points,)`` parametric p-values (``alternative`` applies to t only).
+    effect_size, effect_size_corrected : numpy.ndarray
+        t: d (estimate / residual SD; Cohen's dz for a one-sample design) and Hedges' g.
+        F: partial eta squared and partial epsilon squared.
+    effect_size_name, effect_size_corrected_name : str
+    """
+
+    kind: Literal["t", "F"]
+    estimate: np.ndarray
+    standard_error: np.ndarray
+    statistic: np.ndarray
+    df: tuple[float, float]
+    p: np.ndarray
+    alternative: Alternative
+    effect_size: np.ndarray
+    effect_size_corrected: np.ndarray
+    effect_size_name: str
+    effect_size_corrected_name: str
+
+
+def hedges_factor(df: float) -> float:
+    """Exact small-sample bias factor J(df) = Γ(df/2) / (sqrt(df/2) Γ((df-1)/2)).
+
+    References
+    ----------
+    .. [1] Hedges, L. V. (1981). Distribution theory for Glass's estimator of effect size and
+       related estimators. Journal of Educational Statistics, 6(2), 107-128.
+    """
+    if df <= 1:
+        return float("nan")
+    return float(np.exp(scipy.special.gammaln(df / 2) - 0.5 * np.log(df / 2)
+                        - scipy.special.gammaln((df - 1) / 2)))
+
+
+def p_values(statistic: np.ndarray, kind: str, df: tuple[float, float], *,
+             alternative: Alternative = "two-sided") -> np.ndarray:
+    """Parametric p-values of t (with ``alternative``) or F (upper tail) statistics."""
+    with np.errstate(invalid="ignore"):
+        if kind == "F":
+            return scipy.stats.f.sf(statistic, df[0], df[1])
+        t = scipy.stats.t
+        if alternative == "two-sided":
+            return np.minimum(1.0, 2.0 * t.sf(np.abs(statistic), df[1]))
+        if alternative == "greater":
+            return t.sf(statistic, df[1])
+        return t.cdf(statistic, df[1])
+
+
+def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, *,
+               alternative: Alternative = "two-sided") -> GroupStatistics:
+    """Test a group contrast of subjects' contrast estimates at every point.
+
+    Parameters
+    ----------
+    estimates : numpy.ndarray
+        ``(n_subjects, n_points)`` for one subject contrast, or ``(n_subjects, k, n_points)``
+        for ``k`` subject contrasts tested jointly.
+    design : numpy.ndarray
+        ``(n_subjects, q)`` group design matrix of full column rank.
+    contrast : numpy.ndarray
+        ``(m, q)`` group contrast weights.
+    alternative : {"two-sided", "greater", "less"}, default "two-sided"
+        Direction of a t test; F tests are always upper-tailed and need "two-sided".
+
+    Returns
+    -------
+    GroupStatistics
+
+    Raises
+    ------
+    ModelError
+        Too few subjects for the design (no residual df, or fewer than needed for the joint
+        test), both ``k > 1`` and ``m > 1``, or ``alternative`` not two-sided for an F test.
+
+    Notes
+    -----
+    With ``B`` the group betas, ``V = (G^T G)^{-1}`` and residual variance ``s²`` at a point:
+
+    * one subject contrast, one group contrast ``c``: ``t = c B / sqrt(s² c V c^T)`` on
+      ``n - q`` df;
+    * one subject contrast, ``m`` group contrasts ``L``:
+      ``F = (L B)^T (L V L^T)^{-1} (L B) / (m s²)`` on ``(m, n - q)`` df;
+    * ``k`` subject contrasts, one group contrast ``c``: Hotelling's
+      ``T² = a^T S^{-1} a / (c V c^T)`` with ``a = c B`` (a k-vector) and ``S`` the residual
+      covariance matrix on ``ν = n - q`` df; ``F = (ν - k + 1) / (k ν) T²`` on
+      ``(k, ν - k + 1)`` df [1]_.
+
+    Effect sizes: for t, ``d = c B / s`` (with an intercept-only design and ``c = 1`` this is
+    Cohen's dz; with two groups and ``c`` their difference, d with the pooled SD [2]_) and
+    Hedges' ``g = J(ν) d`` [3]_; for F, partial eta squared ``F m / (F m + ν₂)`` and Kelley's
+    partial epsilon squared ``(F - 1) m / (F m + ν₂)`` [4]_ (may be negative).
+
+    References
+    ----------
+    .. [1] Hotelling, H. (1931). The generalization of Student's ratio. Annals of Mathematical
+       Statistics, 2(3), 360-378.
+    .. [2] Cohen, J. (1988). Statistical Power Analysis for the Behavioral Sciences (2nd ed.).
+       Erlbaum.
+    .. [3] Hedges, L. V. (1981). Journal of Educational Statistics, 6(2), 107-128.
+    .. [4] Okada, K. (2013). Is omega squared less biased? A comparison of three major effect
+       size indices in one-way ANOVA. Behaviormetrika, 40(2), 129-147.
+    """
+    if alternative not in ALTERNATIVES:
+        raise ModelError(f"alternative must be one of {', '.join(ALTERNATIVES)}; got {alternative!r}")
+    Y = np.asarray(estimates, dtype=np.float64)
+    if Y.ndim == 2:
+        Y = Y[:, None, :]
+    G = np.asarray(design, dtype=np.float64)
+    L = np.atleast_2d(np.asarray(contrast, dtype=np.float64))
+    n, k, P = Y.shape
+    q = G.shape[1]
+    m = L.shape[0]
+    if G.shape[0] != n:
+        raise ModelError(f"group design has {G.shape[0]} rows for {n} subjects")
+    if L.shape[1] != q:
+        raise ModelError(f"group contrast has {L.shape[1]} weights for {q} group design columns")
+    dfe = n - q
+    if dfe < 1:
+        raise ModelError(f"{n} subjects for {q} group design columns: at least {q + 1} are needed")
+    if k > 1 and m > 1:
+        raise ModelError("a joint test over several subject contrasts takes one group contrast; "
+                         f"got {m} group contrasts")
+    if (k > 1 or m > 1) and alternative != "two-sided":
+        raise ModelError(f"alternative {alternative!r} applies to t tests only; an F test is "
+                         "two-sided (upper-tailed in F)")
+    fit = fit_ols(G, Y.reshape(n, k * P))
+    B = fit.betas.reshape(q, k, P)
+    V = fit.xtx_inv
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if k == 1 and m == 1:
+            c = L[0]
+            est = (c @ B[:, 0, :])[None, :]
+            s2 = fit.residual_variance
+            se = np.sqrt(s2 * (c @ V @ c))
+            stat = est[0] / se
+            df = (1.0, float(dfe))
+            d = est[0] / np.sqrt(s2)
+            j = hedges_factor(dfe)
+            es, es_c = d, j * d
+            names = ("dz", "gz") if q == 1 else ("d", "g")
+        else:
+            if k == 1:
+                est = L @ B[:, 0, :]                              # (m, P)
+                s2 = fit.residual_variance
+                Minv = np.linalg.inv(L @ V @ L.T)
+                stat = np.einsum("ip,ij,jp->p", est, Minv, est) / (m * s2)
+                df = (float(m), float(dfe))
+            else:
+                if dfe - k + 1 < 1:
+                    raise ModelError(f"a joint test of {k} subject contrasts needs at least "
+                                     f"{q + k} subjects; there are {n}")
+                c = L[0]
+                est = np.einsum("q,qkp->kp", c, B)                # (k, P)
+                E = Y - np.einsum("nq,qkp->nkp", G, B)
+                S = np.einsum("nkp,nlp->pkl", E, E) / dfe
+                a = est.T[:, :, None]
+                finite = np.isfinite(S).all(axis=(1, 2)) & (np.linalg.det(S) > 0)
+                sol = np.full_like(a, np.nan)
+                sol[finite] = np.linalg.solve(S[finite], a[finite])
+                t2 = np.einsum("pk,pk->p", est.T, sol[:, :, 0]) / (c @ V @ c)
+                stat = (dfe - k + 1) / (k * dfe) * t2
+                df = (float(k), float(dfe - k + 1))
+            se = np.full(P, np.nan)
+            es = stat * df[0] / (stat * df[0] + df[1])
+            es_c = (stat - 1) * df[0] / (stat * df[0] + df[1])
+            names = ("partial eta squared", "partial epsilon squared")
+    p = p_values(stat, "t" if (k == 1 and m == 1) else "F", df, alternative=alternative)
+    return GroupStatistics(kind="t" if (k == 1 and m == 1) else "F", estimate=est,
+                           standard_error=se, statistic=stat, df=df, p=p, alternative=alternative,
+                           effect_size=es, effect_size_corrected=es_c, effect_size_name=names[0],
+                           effect_size_corrected_name=names[1])

@@ -1,0 +1,280 @@
+"""The whole analysis of a design file, stage by stage: plan, fit subjects, test at group level.
+
+:func:`plan_analysis` reads everything and builds every design and contrast without touching the
+EEG data beyond the array headers, so every input error surfaces before any fitting.
+:func:`fit_subjects` streams the subjects one at a time; :func:`test_group` runs one test;
+:func:`run_analysis` chains them. The CLI is a thin layer over these functions.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+
+from .errors import ModelError, StudyError
+from .formula import ContrastMatrix, Design, DesignMatrix, build_design, contrast_matrix, design_matrix
+from .group_level import group_test
+from .inference.corrections import adjust_p, correction_from_name
+from .results import Provenance, RunResult, SubjectSummary, TestResult, provenance
+from .spec import DesignSpec, TestSpec, load_design
+from .study import Study, read_study
+from .subject_level import fit_ols
+
+__all__ = ["TestPlan", "AnalysisPlan", "SubjectEstimates", "plan_analysis", "fit_subjects",
+           "test_group", "run_analysis"]
+
+log = logging.getLogger("glmeeg")
+
+
+@dataclass(frozen=True)
+class TestPlan:
+    """One test, ready to run: its contrasts and its group design over the included subjects."""
+
+    spec: TestSpec
+    subject_contrast: ContrastMatrix
+    group_formula: str
+    group_design: Design
+    group_matrix: DesignMatrix
+    subjects: tuple[str, ...]
+    group_contrast: ContrastMatrix
+    notes: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class AnalysisPlan:
+    """Everything :func:`run_analysis` will do, checked, before any EEG data are read."""
+
+    design_file: Path | None
+    spec: DesignSpec
+    study: Study
+    subject_design: Design
+    subject_matrices: dict[str, DesignMatrix]
+    tests: tuple[TestPlan, ...]
+    warnings: tuple[str, ...]
+
+    def describe(self) -> str:
+        """What will be done, as readable text (``glmeeg check``)."""
+        st = self.study
+        lines = [f"{len(st.subject_ids)} subjects; points: {' x '.join(map(str, st.axes.shape))} "
+                 f"({', '.join(st.axes.dims)}) = {st.axes.n_points}; times "
+                 f"{st.axes.times[0]:g} to {st.axes.times[-1]:g} s",
+                 f"subject model: {self.subject_design.formula}",
+                 f"  columns ({len(self.subject_design.column_names)}, full rank): "
+                 f"{', '.join(self.subject_design.column_names)}"]
+        for v, lv in self.subject_design.factors.items():
+            lines.append(f"  factor {v}: levels {', '.join(lv)} (reference {lv[0]})")
+        lines.append("  subject   epochs  trials  used  dropped  df   condition")
+        for s, X in self.subject_matrices.items():
+            rows = st.subject_trials(s)
+            lines.append(f"  {s:<9} {st.epoch_counts[s]:>6}  {len(rows):>6}  {X.matrix.shape[0]:>4}  "
+                         f"{X.n_dropped:>7}  {X.matrix.shape[0] - X.matrix.shape[1]:>3}  "
+                         f"{X.condition_number:9.3g}")
+        for t in self.tests:
+            kind = "t" if t.subject_contrast.n_rows == 1 and t.group_contrast.n_rows == 1 else "F"
+            lines.append(f"test {t.spec.name}: {kind} test, {len(t.subjects)} subjects, correction "
+                         f"{t.spec.correction}, alpha {t.spec.alpha:g}, {t.spec.alternative}")
+            for lab, row in zip(t.subject_contrast.labels, t.subject_contrast.matrix):
+                lines.append(f"  subject contrast {lab}: {_weights(self.subject_design.column_names, row)}")
+            lines.append(f"  group model: {t.group_formula}; columns {', '.join(t.group_design.column_names)}")
+            for lab, row in zip(t.group_contrast.labels, t.group_contrast.matrix):
+                lines.append(f"  group contrast {lab}: {_weights(t.group_design.column_names, row)}")
+            lines += [f"  note: {n}" for n in t.notes]
+        lines += [f"warning: {w}" for w in self.warnings]
+        return "\n".join(lines)
+
+
+def _weights(names, row) -> str:
+    return ", ".join(f"{w:g}*{n}" for n, w in zip(names, row) if w != 0)
+
+
+def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = None) -> AnalysisPlan:
+    """Read a design and its study and build every design matrix and contrast.
+
+    Parameters
+    ----------
+    design : str, Path or DesignSpec
+        A design file, or an already validated design (then ``root`` is required).
+    root : str or Path, optional
+        Folder the study paths are relative to; default: the design file's folder.
+
+    Raises
+    ------
+    GlmeegError
+        Any problem with the design, the study files, the formulas or the contrasts.
+    """
+    if isinstance(design, DesignSpec):
+        spec, design_file = design, None
+        if root is None:
+            raise ValueError("root is needed when the design is given as a DesignSpec")
+    else:
+        design_file = Path(design)
+        spec = load_design(design_file)
+        root = design_file.parent if root is None else root
+    study = read_study(spec.data, root=root)
+    warnings = list(study.warnings)
+    sdesign = build_design(study.trials, spec.subject_model.formula, levels=spec.subject_model.levels,
+                           source=spec.data.trials, where="subject_model.formula")
+    matrices = {s: design_matrix(sdesign, study.subject_trials(s), who=f"subject {s}")
+                for s in study.subject_ids}
+    for s, X in matrices.items():
+        if X.condition_number > 1e8:
+            warnings.append(f"subject {s}: design condition number {X.condition_number:.3g}; estimates "
+                            "may be unstable (rescale or centre covariates)")
+    subj_table = study.subjects
+    tests = []
+    for t in spec.test:
+        where = f"test {t.name!r}"
+        sc = contrast_matrix(sdesign, t.subject_contrast, where=f"{where}: subject_contrast")
+        gformula = t.group_formula or spec.group_model.formula
+        gsource = spec.data.subjects or "the subjects (no subjects table)"
+        gdesign = build_design(subj_table, gformula, levels=spec.group_model.levels, source=gsource,
+                               where=f"{where}: group formula")
+        gm = design_matrix(gdesign, subj_table, who=f"{where}: group design")
+        included = tuple(np.asarray(study.subject_ids)[gm.kept])
+        gc = contrast_matrix(gdesign, t.group_contrast, where=f"{where}: group_contrast")
+        notes = []
+        if gm.n_dropped:
+            notes.append(f"{gm.n_dropped} subject(s) left out for missing values in {gformula}: "
+                         f"{', '.join(np.asarray(study.subject_ids)[~gm.kept])}")
+        n, q = gm.matrix.shape
+        k, m = sc.n_rows, gc.n_rows
+        if k > 1 and m > 1:
+            raise ModelError(f"{where}: a joint test over {k} subject contrasts takes one group "
+                             f"contrast; got {m}")
+        needed = q + k if k > 1 else q + 1
+        if n < needed:
+            raise ModelError(f"{where}: {n} subjects for a group model with {q} column(s)"
+                             f"{f' and {k} joint subject contrasts' if k > 1 else ''}; at least "
+                             f"{needed} are needed")
+        if (k > 1 or m > 1) and t.alternative != "two-sided":
+            raise ModelError(f"{where}: alternative {t.alternative!r} applies to t tests only; this "
+                             "is an F test (use two-sided)")
+        if n < 16:
+            notes.append(f"{n} subjects: fewer than the 16-32 common in EEG group studies "
+                         "(common practice); estimates and power may be poor")
+        tests.append(TestPlan(spec=t, subject_contrast=sc, group_formula=gformula, group_design=gdesign,
+                              group_matrix=gm, subjects=included, group_contrast=gc, notes=tuple(notes)))
+    return AnalysisPlan(design_file=design_file, spec=spec, study=study, subject_design=sdesign,
+                        subject_matrices=matrices, tests=tuple(tests), warnings=tuple(warnings))
+
+
+@dataclass(frozen=True)
+class SubjectEstimates:
+    """Subject-level contrast estimates of every test, stacked over subjects.
+
+    ``estimates`` has shape ``(n_subjects, n_rows, n_points)`` where the rows are the subject
+    contrast rows of all tests, in test order; ``rows[name]`` is the slice of one test.
+    """
+
+    subjects: tuple[str, ...]
+    estimates: np.ndarray
+    rows: dict[str, slice]
+    summaries: tuple[SubjectSummary, ...]
+
+
+def fit_subjects(plan: AnalysisPlan, *, progress: Callable[[str, int, int], None] | None = None) -> SubjectEstimates:
+    """Fit the subject model at every point of every subject, one subject at a time.
+
+    Only the contrast estimates the tests need are kept, so memory stays near one subject's
+    data plus ``n_subjects x n_contrast_rows x n_points`` values.
+
+    Raises
+    ------
+    StudyError
+        A subject's data hold NaN or Inf in the epochs used.
+    """
+    st = plan.study
+    C = np.vstack([t.subject_contrast.matrix for t in plan.tests])
+    rows, start = {}, 0
+    for t in plan.tests:
+        rows[t.spec.name] = slice(start, start + t.subject_contrast.n_rows)
+        start += t.subject_contrast.n_rows
+    out = np.empty((len(st.subject_ids), C.shape[0], st.axes.n_points))
+    summaries = []
+    for i, s in enumerate(st.subject_ids):
+        X = plan.subject_matrices[s]
+        trials = st.subject_trials(s)
+        epochs = trials["epoch"].to_numpy()[X.kept]
+        Y = st.read_epochs(s, epochs)
+        fit = fit_ols(X.matrix, Y)
+        bad = ~(np.isfinite(fit.residual_variance) & np.isfinite(fit.betas).all(axis=0))
+        if bad.any():
+            cols = np.flatnonzero(bad)[:1000]
+            ep = np.unique(epochs[np.flatnonzero(~np.isfinite(Y[:, cols]).all(axis=1))])
+            raise StudyError(f"subject {s}: {st.epoch_label(s)} holds NaN or Inf values in epoch(s) "
+                             f"{', '.join(map(str, ep[:10]))}{' ...' if len(ep) > 10 else ''}; "
+                             "remove those epochs from the trials table or repair the data")
+        out[i] = C @ fit.betas
+        summaries.append(SubjectSummary(subject=s, epochs_in_file=st.epoch_counts[s],
+                                        trials_listed=len(trials), trials_used=int(X.kept.sum()),
+                                        rows_dropped=X.n_dropped, df_resid=fit.df_resid,
+                                        condition_number=X.condition_number))
+        log.debug("subject %s fitted: %d trials", s, X.kept.sum())
+        if progress:
+            progress(s, i + 1, len(st.subject_ids))
+    return SubjectEstimates(subjects=st.subject_ids, estimates=out, rows=rows, summaries=tuple(summaries))
+
+
+def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, *,
+               prov: Provenance) -> TestResult:
+    """Run one test at the group level and apply its correction."""
+    idx = [estimates.subjects.index(s) for s in test.subjects]
+    Y = estimates.estimates[idx][:, estimates.rows[test.spec.name], :]
+    stats = group_test(Y, test.group_matrix.matrix, test.group_contrast.matrix,
+                       alternative=test.spec.alternative)
+    correction = correction_from_name(test.spec.correction)
+    p_corr = adjust_p(stats.p, correction)
+    significant = np.nan_to_num(p_corr, nan=1.0) <= test.spec.alpha
+    labels = test.subject_contrast.labels if test.subject_contrast.n_rows > 1 else test.group_contrast.labels
+    if test.subject_contrast.n_rows == 1 and test.group_contrast.n_rows == 1:
+        labels = (f"{test.subject_contrast.labels[0]} | {test.group_contrast.labels[0]}",)
+    return TestResult(name=test.spec.name, spec=test.spec, kind=stats.kind, axes=plan.study.axes,
+                      subjects=test.subjects, subject_columns=plan.subject_design.column_names,
+                      subject_contrast=test.subject_contrast.matrix,
+                      subject_contrast_labels=test.subject_contrast.labels,
+                      group_formula=test.group_formula, group_columns=test.group_design.column_names,
+                      group_contrast=test.group_contrast.matrix,
+                      group_contrast_labels=test.group_contrast.labels, df=stats.df,
+                      alternative=stats.alternative, alpha=test.spec.alpha, correction=correction,
+                      estimate=stats.estimate, estimate_labels=tuple(labels),
+                      standard_error=stats.standard_error, statistic=stats.statistic, p=stats.p,
+                      p_corrected=p_corr, significant=significant, effect_size=stats.effect_size,
+                      effect_size_corrected=stats.effect_size_corrected,
+                      effect_size_name=stats.effect_size_name,
+                      effect_size_corrected_name=stats.effect_size_corrected_name,
+                      notes=test.notes, provenance=prov)
+
+
+def run_analysis(design: str | Path | AnalysisPlan, *,
+                 progress: Callable[[str, int, int], None] | None = None) -> RunResult:
+    """Run every test of a design file.
+
+    Parameters
+    ----------
+    design : str, Path or AnalysisPlan
+        A design file, or a plan from :func:`plan_analysis`.
+    progress : callable, optional
+        Called as ``progress(subject, done, total)`` after each subject's fit.
+
+    Returns
+    -------
+    RunResult
+        Save it with :func:`glmeeg.write_run`.
+
+    Examples
+    --------
+    >>> run = run_analysis("study/design.toml")            # doctest: +SKIP
+    >>> print(run.test("urgency-high-vs-low"))             # doctest: +SKIP
+    """
+    plan = design if isinstance(design, AnalysisPlan) else plan_analysis(design)
+    prov = provenance(design_file=plan.design_file, inputs=plan.study.input_files)
+    est = fit_subjects(plan, progress=progress)
+    tests = tuple(test_group(plan, t, est, prov=prov) for t in plan.tests)
+    return RunResult(design=plan.spec.model_dump(mode="json"), subject_formula=plan.subject_design.formula,
+                     subject_columns=plan.subject_design.column_names, subjects=est.summaries,
+                     tests=tests, warnings=plan.warnings, provenance=prov)

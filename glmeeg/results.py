@@ -1,0 +1,405 @@
+"""Typed, immutable results; saving, loading and exporting them.
+
+A :class:`TestResult` holds one test's maps (flat, one value per point, labelled by its
+:class:`~glmeeg.axes.Axes`), its settings and provenance. A :class:`RunResult` holds every test
+of a design plus the per-subject summary. Results are saved as a folder per test:
+
+``result.npz``
+    every array, bit for bit, plus the settings as JSON; :func:`load_result` reads it back.
+``points.csv``
+    one row per point: channel, (frequency,) time, estimate, statistic, p, p_corrected,
+    significant, effect_size, effect_size_corrected.
+``summary.json``
+    what was found, in a form other programs can read.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import platform
+import shutil
+import sys
+import tempfile
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+import numpy as np
+import pandas as pd
+from pydantic import BaseModel, ConfigDict, PlainSerializer, PlainValidator
+
+from .axes import Axes
+from .errors import GlmeegError
+from .inference.corrections import Correction
+from .spec import TestSpec
+
+__all__ = ["Provenance", "SubjectSummary", "TestResult", "RunResult", "load_result", "load_run",
+           "write_run", "provenance", "CAUTION", "CLINICAL_CAUTION"]
+
+SCHEMA_VERSION = 1
+CLINICAL_CAUTION = ("glmeeg is research software, not a clinical diagnostic device: clinical EEG "
+                    "interpretation belongs to licensed clinicians under local regulations.")
+CAUTION = ("Significant points are where the test rejects the null hypothesis under the chosen "
+           "error control; they do not establish the exact onset, offset or spatial extent of an "
+           "effect.")
+
+
+def _frozen_array(x: Any) -> np.ndarray:
+    a = np.array(x, copy=True)
+    a.setflags(write=False)
+    return a
+
+
+Array = Annotated[np.ndarray, PlainValidator(_frozen_array),
+                  PlainSerializer(lambda a: a.tolist(), when_used="json")]
+
+
+class _Frozen(BaseModel):
+    model_config = ConfigDict(frozen=True, extra="forbid", arbitrary_types_allowed=True)
+
+
+class Provenance(_Frozen):
+    """What produced a result: software versions, input file hashes, time."""
+
+    glmeeg_version: str
+    python_version: str
+    numpy_version: str
+    scipy_version: str
+    pandas_version: str
+    patsy_version: str
+    platform: str
+    created: str
+    design_file: str | None = None
+    input_sha256: dict[str, str] = {}
+
+
+def _sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for chunk in iter(lambda: f.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def provenance(*, design_file: Path | None = None, inputs: dict[str, Path] | None = None) -> Provenance:
+    """Versions, time and SHA-256 of the design file and every input file."""
+    import patsy
+    import scipy
+
+    from . import __version__
+
+    hashes = {}
+    if design_file is not None:
+        hashes["design"] = _sha256(design_file)
+    for label, path in (inputs or {}).items():
+        hashes[label] = _sha256(path)
+    return Provenance(glmeeg_version=__version__, python_version=platform.python_version(),
+                      numpy_version=np.__version__, scipy_version=scipy.__version__,
+                      pandas_version=pd.__version__, patsy_version=patsy.__version__,
+                      platform=platform.platform(),
+                      created=datetime.now(timezone.utc).isoformat(timespec="seconds"),
+                      design_file=str(design_file) if design_file else None, input_sha256=hashes)
+
+
+class SubjectSummary(_Frozen):
+    """How one subject entered the analysis."""
+
+    subject: str
+    epochs_in_file: int
+    trials_listed: int
+    trials_used: int
+    rows_dropped: int
+    df_resid: int
+    condition_number: float
+
+
+_ARRAYS = ("estimate", "standard_error", "statistic", "p", "p_corrected", "significant",
+           "effect_size", "effect_size_corrected", "subject_contrast", "group_contrast")
+
+
+class TestResult(_Frozen):
+    """One test at every point.
+
+    Maps are flat arrays of length ``axes.n_points`` (``estimate`` has one row per contrast row);
+    :meth:`map` returns them with the axes' shape, :meth:`to_frame` as a tidy table.
+    """
+
+    schema_version: int = SCHEMA_VERSION
+    name: str
+    spec: TestSpec
+    kind: Literal["t", "F"]
+    axes: Axes
+    subjects: tuple[str, ...]
+    subject_columns: tuple[str, ...]
+    subject_contrast: Array
+    subject_contrast_labels: tuple[str, ...]
+    group_formula: str
+    group_columns: tuple[str, ...]
+    group_contrast: Array
+    group_contrast_labels: tuple[str, ...]
+    df: tuple[float, float]
+    alternative: Literal["two-sided", "greater", "less"]
+    alpha: float
+    correction: Correction
+    estimate: Array
+    estimate_labels: tuple[str, ...]
+    standard_error: Array
+    statistic: Array
+    p: Array
+    p_corrected: Array
+    significant: Array
+    effect_size: Array
+    effect_size_corrected: Array
+    effect_size_name: str
+    effect_size_corrected_name: str
+    notes: tuple[str, ...] = ()
+    provenance: Provenance
+
+    @property
+    def n_subjects(self) -> int:
+        return len(self.subjects)
+
+    @property
+    def n_significant(self) -> int:
+        return int(self.significant.sum())
+
+    @property
+    def n_nonfinite(self) -> int:
+        return int((~np.isfinite(self.statistic)).sum())
+
+    def map(self, field: str) -> np.ndarray:
+        """A map as an array of shape ``axes.shape`` (``(rows, *axes.shape)`` for ``estimate``)."""
+        if field not in _ARRAYS or field in ("subject_contrast", "group_contrast"):
+            raise KeyError(f"{field!r} is not a map; maps: {', '.join(_ARRAYS[:8])}")
+        return self.axes.unflatten(getattr(self, field))
+
+    def to_frame(self) -> pd.DataFrame:
+        """Tidy table, one row per point (the content of ``points.csv``).
+
+        For F tests ``estimate`` is empty and each contrast row has a column
+        ``estimate: <label>``.
+        """
+        df = self.axes.point_labels()
+        if self.kind == "t":
+            df["estimate"] = self.estimate[0]
+            df["standard_error"] = self.standard_error
+        else:
+            df["estimate"] = np.nan
+            for lab, row in zip(self.estimate_labels, self.estimate):
+                df[f"estimate: {lab}"] = row
+        df["statistic"] = self.statistic
+        df["p"] = self.p
+        df["p_corrected"] = self.p_corrected
+        df["significant"] = self.significant
+        df["effect_size"] = self.effect_size
+        df["effect_size_corrected"] = self.effect_size_corrected
+        return df
+
+    def to_xarray(self):
+        """An ``xarray.Dataset`` with dims channel, (frequency,) time (needs xarray)."""
+        try:
+            import xarray as xr
+        except ImportError:  # pragma: no cover - depends on the environment
+            raise GlmeegError("to_xarray needs xarray: pip install 'glmeeg[xarray]'") from None
+        dims = self.axes.dims
+        coords = {"channel": list(self.axes.channels), "time": list(self.axes.times)}
+        if self.axes.frequencies is not None:
+            coords["frequency"] = list(self.axes.frequencies)
+        data = {f: (dims, self.map(f)) for f in ("statistic", "p", "p_corrected", "significant",
+                                                 "effect_size", "effect_size_corrected")}
+        data["estimate"] = (("contrast",) + dims, self.map("estimate"))
+        coords["contrast"] = list(self.estimate_labels)
+        return xr.Dataset(data, coords=coords, attrs={"test": self.name, "kind": self.kind,
+                                                      "df": list(self.df),
+                                                      "effect_size_name": self.effect_size_name})
+
+    def findings(self) -> dict:
+        """A summary of the significant points: count, peak, channels and their time spans."""
+        sig = self.significant.astype(bool)
+        out: dict[str, Any] = {"n_points": self.axes.n_points, "n_significant": int(sig.sum()),
+                               "n_nonfinite": self.n_nonfinite}
+        finite = np.isfinite(self.p)
+        if finite.any():
+            labels = self.axes.point_labels()
+            i = int(np.nanargmin(np.where(finite, self.p, np.nan)))
+            if self.kind == "t" and np.isfinite(self.statistic).any():
+                i = int(np.nanargmax(np.abs(np.where(finite, self.statistic, np.nan))))
+            elif np.isfinite(self.statistic).any():
+                i = int(np.nanargmax(np.where(finite, self.statistic, np.nan)))
+            out["peak"] = {**{k: _plain(v) for k, v in labels.iloc[i].items()},
+                           "statistic": float(self.statistic[i]), "p": float(self.p[i]),
+                           "p_corrected": float(self.p_corrected[i]),
+                           "effect_size": float(self.effect_size[i])}
+        if sig.any():
+            labels = self.axes.point_labels()[sig]
+            spans = labels.groupby("channel", sort=False)["time"].agg(["min", "max", "size"])
+            out["channels"] = [{"channel": ch, "first_time": float(r["min"]), "last_time": float(r["max"]),
+                                "n_points": int(r["size"])} for ch, r in spans.iterrows()]
+        else:
+            out["channels"] = []
+        return out
+
+    def summary(self) -> dict:
+        """Everything ``summary.json`` holds."""
+        return {"schema_version": self.schema_version, "test": self.name, "kind": self.kind,
+                "df": list(self.df), "alternative": self.alternative, "alpha": self.alpha,
+                "correction": self.correction.model_dump(), "n_subjects": self.n_subjects,
+                "subject_contrast": dict(zip(self.subject_contrast_labels, self.subject_contrast.tolist())),
+                "subject_columns": list(self.subject_columns), "group_formula": self.group_formula,
+                "group_columns": list(self.group_columns),
+                "group_contrast": dict(zip(self.group_contrast_labels, self.group_contrast.tolist())),
+                "effect_size_name": self.effect_size_name,
+                "effect_size_corrected_name": self.effect_size_corrected_name,
+                "findings": self.findings(), "notes": list(self.notes),
+                "cautions": [CAUTION, CLINICAL_CAUTION]}
+
+    def __str__(self) -> str:
+        f = self.findings()
+        df = f"t({self.df[1]:g})" if self.kind == "t" else f"F({self.df[0]:g}, {self.df[1]:g})"
+        lines = [f"test {self.name}: {df}, {self.n_subjects} subjects, {self.correction.describe()}, "
+                 f"alpha {self.alpha:g}, {self.alternative}",
+                 f"  {f['n_significant']} of {f['n_points']} points significant"]
+        if "peak" in f:
+            pk = f["peak"]
+            where = ", ".join(f"{k} {pk[k]:g}" if k != "channel" else f"channel {pk[k]}"
+                              for k in ("channel", "frequency", "time") if k in pk)
+            lines.append(f"  peak: {where}: {self.kind} = {pk['statistic']:.3f}, p = {pk['p']:.3g}, "
+                         f"corrected p = {pk['p_corrected']:.3g}, {self.effect_size_name} = {pk['effect_size']:.3f}")
+        for ch in f["channels"][:40]:
+            lines.append(f"    {ch['channel']:>8}: {1000 * ch['first_time']:7.0f} to "
+                         f"{1000 * ch['last_time']:5.0f} ms ({ch['n_points']} points)")
+        if len(f["channels"]) > 40:
+            lines.append(f"    ... and {len(f['channels']) - 40} more channels")
+        if f["n_nonfinite"]:
+            lines.append(f"  warning: the statistic is not finite at {f['n_nonfinite']} points "
+                         "(zero variance or missing data); they are left out of the correction")
+        for n in self.notes:
+            lines.append(f"  note: {n}")
+        lines.append(f"  caution: {CAUTION}")
+        return "\n".join(lines)
+
+    # --- saving ---------------------------------------------------------------------------
+    def save(self, folder: str | Path) -> None:
+        """Write ``result.npz``, ``points.csv`` and ``summary.json`` into ``folder``."""
+        folder = Path(folder)
+        folder.mkdir(parents=True, exist_ok=True)
+        meta = self.model_dump(mode="json", exclude=set(_ARRAYS))
+        arrays = {k: np.asarray(getattr(self, k)) for k in _ARRAYS}
+        with open(folder / "result.npz", "wb") as fh:
+            np.savez(fh, meta=np.array(json.dumps(meta)), **arrays)
+        self.to_frame().to_csv(folder / "points.csv", index=False, float_format="%.10g")
+        (folder / "summary.json").write_text(json.dumps(self.summary(), indent=2, default=_plain) + "\n")
+
+
+def _plain(v):
+    if isinstance(v, np.generic):
+        return v.item()
+    return v
+
+
+def load_result(path: str | Path) -> TestResult:
+    """Read a saved test (its folder or its ``result.npz``) back, bit for bit."""
+    path = Path(path)
+    if path.is_dir():
+        path = path / "result.npz"
+    if not path.is_file():
+        raise GlmeegError(f"{path}: no saved glmeeg result here")
+    try:
+        with np.load(path, allow_pickle=False) as z:
+            meta = json.loads(str(z["meta"]))
+            arrays = {k: z[k] for k in _ARRAYS}
+    except (OSError, ValueError, KeyError) as e:
+        raise GlmeegError(f"{path}: not a glmeeg result file ({e})") from None
+    return TestResult.model_validate({**meta, **arrays})
+
+
+class RunResult(_Frozen):
+    """All tests of one design, with the per-subject summary and provenance."""
+
+    schema_version: int = SCHEMA_VERSION
+    design: dict
+    subject_formula: str
+    subject_columns: tuple[str, ...]
+    subjects: tuple[SubjectSummary, ...]
+    tests: tuple[TestResult, ...]
+    warnings: tuple[str, ...] = ()
+    provenance: Provenance
+
+    def test(self, name: str) -> TestResult:
+        for t in self.tests:
+            if t.name == name:
+                return t
+        raise KeyError(f"no test {name!r}; tests: {', '.join(t.name for t in self.tests)}")
+
+    def run_summary(self) -> dict:
+        return {"schema_version": self.schema_version, "design": self.design,
+                "subject_formula": self.subject_formula, "subject_columns": list(self.subject_columns),
+                "subjects": [s.model_dump() for s in self.subjects],
+                "tests": [t.name for t in self.tests], "warnings": list(self.warnings),
+                "provenance": self.provenance.model_dump()}
+
+    def __str__(self) -> str:
+        used = sum(s.trials_used for s in self.subjects)
+        dropped = sum(s.rows_dropped for s in self.subjects)
+        head = (f"{len(self.subjects)} subjects, {used} trials used ({dropped} rows dropped for "
+                f"missing values); subject model: {self.subject_formula}")
+        return "\n".join([head] + [f"warning: {w}" for w in self.warnings]
+                         + [str(t) for t in self.tests] + [CLINICAL_CAUTION])
+
+
+def write_run(run: RunResult, out: str | Path) -> Path:
+    """Write a run into folder ``out`` atomically.
+
+    Everything is written into a temporary folder next to ``out`` and renamed into place at the
+    end, so a failed run leaves no partial folder and an earlier result at ``out`` stays intact
+    until the new one is complete.
+
+    Raises
+    ------
+    GlmeegError
+        ``out`` exists, is not empty and is not a glmeeg result folder.
+    """
+    out = Path(out)
+    if out.exists():
+        if not out.is_dir():
+            raise GlmeegError(f"{out}: exists and is not a folder")
+        if any(out.iterdir()) and not (out / "run.json").is_file():
+            raise GlmeegError(f"{out}: folder is not empty and holds no glmeeg result; choose a new "
+                              "or empty output folder")
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp, 0o777 & ~umask)  # mkdtemp makes the folder private; give it the usual mode
+    try:
+        for t in run.tests:
+            t.save(tmp / t.name)
+        (tmp / "run.json").write_text(json.dumps(run.run_summary(), indent=2, default=_plain) + "\n")
+        if out.exists():
+            old = out.with_name(f".{out.name}.{os.getpid()}.old")
+            os.replace(out, old)
+            os.replace(tmp, out)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(tmp, out)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return out
+
+
+def load_run(folder: str | Path) -> list[TestResult]:
+    """Load every test of a run folder (or the single test of a test folder)."""
+    folder = Path(folder)
+    if (folder / "result.npz").is_file():
+        return [load_result(folder)]
+    run = folder / "run.json"
+    if not run.is_file():
+        raise GlmeegError(f"{folder}: not a glmeeg result folder (no run.json or result.npz)")
+    try:
+        names = json.loads(run.read_text())["tests"]
+    except (ValueError, KeyError) as e:
+        raise GlmeegError(f"{run}: unreadable run summary ({e})") from None
+    return [load_result(folder / n) for n in names]

@@ -1,0 +1,208 @@
+"""Design-file schema: the validated description of a study and its tests.
+
+A design file is TOML with three tables and one array of tables::
+
+    [data]            where the study files are, time and frequency axes
+    [subject_model]   the single-trial formula fitted in every subject
+    [group_model]     the between-subject formula fitted on subjects' contrast estimates
+    [[test]]          one entry per question: contrasts, correction, alpha, alternative
+
+Unknown keys are an error, so a misspelt option never passes silently.
+"""
+
+from __future__ import annotations
+
+import re
+import tomllib
+from pathlib import Path
+from typing import Annotated, Literal, Union
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from .errors import DesignFileError
+
+__all__ = ["DataSpec", "SubjectModelSpec", "GroupModelSpec", "TestSpec", "DesignSpec",
+           "Contrast", "load_design", "parse_design"]
+
+Alternative = Literal["two-sided", "greater", "less"]
+CorrectionName = Literal["none", "bonferroni", "holm", "fdr"]
+
+# A contrast is a column name or patsy constraint string ("a - b"), or a numeric vector; a list
+# of several of these is a joint (F) contrast.
+Contrast = Union[str, list[float], list[Union[str, list[float]]]]
+
+_SAFE_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$")
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+
+class DataSpec(_Strict):
+    """Where the study files are and how their samples map to time (and frequency)."""
+
+    trials: str = Field(description="trials table (CSV), one row per epoch, column 'subject' required")
+    subjects: str | None = Field(None, description="subjects table (CSV): 'subject' plus between-subject variables")
+    channels: str = Field(description="sensors table (tab-separated): 'name', optional x, y, z")
+    epochs: str = Field(description="path pattern of the per-subject epoch arrays, containing '{subject}'")
+    time_start: float = Field(description="time of the first sample, seconds")
+    sampling_rate: float = Field(gt=0, description="samples per second (Hz)")
+    frequencies: list[float] | None = Field(None, description="frequencies (Hz) of 4-D epoch arrays")
+
+    @field_validator("epochs")
+    @classmethod
+    def _has_placeholder(cls, v: str) -> str:
+        if "{subject}" not in v:
+            raise ValueError("must contain the placeholder {subject}, e.g. 'epochs/{subject}.npy'")
+        return v
+
+    @field_validator("frequencies")
+    @classmethod
+    def _frequencies_ok(cls, v: list[float] | None) -> list[float] | None:
+        if v is not None:
+            if not v:
+                raise ValueError("must not be empty (leave it out for channel x time data)")
+            if any(f < 0 for f in v) or any(b <= a for a, b in zip(v, v[1:])):
+                raise ValueError("must be non-negative and strictly increasing")
+        return v
+
+
+class _ModelSpec(_Strict):
+    formula: str
+    levels: dict[str, list[str]] = Field(default_factory=dict,
+                                         description="level order per factor; the first is the reference")
+
+    @field_validator("levels")
+    @classmethod
+    def _levels_ok(cls, v: dict[str, list[str]]) -> dict[str, list[str]]:
+        for k, lv in v.items():
+            if len(lv) < 2:
+                raise ValueError(f"factor '{k}' needs at least two levels, got {lv}")
+            if len(set(lv)) != len(lv):
+                raise ValueError(f"factor '{k}' lists a level twice: {lv}")
+        return v
+
+
+class SubjectModelSpec(_ModelSpec):
+    """Single-trial model fitted in every subject (right-hand side of a patsy formula)."""
+
+
+class GroupModelSpec(_ModelSpec):
+    """Between-subject model fitted on the subjects' contrast estimates."""
+
+    formula: str = "1"
+
+
+class TestSpec(_Strict):
+    """One question asked of the data."""
+
+    name: str = Field(description="name of the test; becomes a folder name in the output")
+    subject_contrast: Contrast = Field(description="contrast of subject-level columns; a list = joint F")
+    group_contrast: Contrast = Field("Intercept", description="contrast of group-level columns; a list = joint F")
+    group_formula: str | None = Field(None, description="group formula of this test; default: [group_model].formula")
+    correction: CorrectionName = "fdr"
+    alpha: float = Field(0.05, gt=0, lt=1)
+    alternative: Alternative = "two-sided"
+
+    @field_validator("name")
+    @classmethod
+    def _safe_name(cls, v: str) -> str:
+        if not _SAFE_NAME.match(v) or v in (".", ".."):
+            raise ValueError("must be 1-100 letters, digits, '.', '_' or '-', starting with a letter "
+                             f"or digit (it becomes a folder name); got {v!r}")
+        return v
+
+    @field_validator("subject_contrast", "group_contrast")
+    @classmethod
+    def _non_empty(cls, v: Contrast) -> Contrast:
+        if isinstance(v, str) and not v.strip():
+            raise ValueError("must not be empty")
+        if isinstance(v, list) and not v:
+            raise ValueError("must not be an empty list")
+        return v
+
+
+class DesignSpec(_Strict):
+    """A whole design file."""
+
+    data: DataSpec
+    subject_model: SubjectModelSpec
+    group_model: GroupModelSpec = GroupModelSpec()
+    test: list[TestSpec] = Field(min_length=1, description="one or more [[test]] tables")
+
+    @model_validator(mode="after")
+    def _unique_tests(self) -> "DesignSpec":
+        names = [t.name.lower() for t in self.test]
+        dupes = sorted({n for n in names if names.count(n) > 1})
+        if dupes:
+            raise ValueError(f"test names must be unique (case-insensitively); repeated: {', '.join(dupes)}")
+        return self
+
+
+def _location(loc: tuple) -> str:
+    out = ""
+    for part in loc:
+        if isinstance(part, int):
+            out += f"[{part}]"
+        elif part in ("str", "list[float]", "list[union[str,list[float]]]") or "[" in str(part):
+            continue  # union branch names add nothing for the user
+        else:
+            out += ("." if out else "") + str(part)
+    return out or "(top level)"
+
+
+def _one_line(err: ValidationError, source: str) -> str:
+    e = err.errors()[0]
+    loc = _location(e["loc"])
+    msg = e["msg"].removeprefix("Value error, ")
+    if e["type"] == "extra_forbidden":
+        return f"{source}: unknown key '{loc}'"
+    if e["type"] == "missing":
+        return f"{source}: missing required key '{loc}'"
+    got = e.get("input")
+    shown = "" if isinstance(got, dict) else f" (got {got!r})"
+    if len(shown) > 80:
+        shown = shown[:77] + "...)"
+    return f"{source}: {loc}: {msg}{shown}"
+
+
+def parse_design(data: dict, *, source: str = "design") -> DesignSpec:
+    """Validate a design already read into a dict; errors name ``source`` and the key."""
+    try:
+        return DesignSpec.model_validate(data)
+    except ValidationError as err:
+        raise DesignFileError(_one_line(err, source)) from None
+
+
+def load_design(path: str | Path) -> DesignSpec:
+    """Read and validate a TOML design file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The design file. Paths inside it are relative to its folder.
+
+    Returns
+    -------
+    DesignSpec
+
+    Raises
+    ------
+    DesignFileError
+        The file is missing, is not valid UTF-8 TOML, or breaks the schema (unknown key, wrong
+        type, value out of range). The message is one line naming the file and the key.
+    """
+    path = Path(path)
+    try:
+        text = path.read_bytes().decode("utf-8")
+    except FileNotFoundError:
+        raise DesignFileError(f"{path}: design file not found") from None
+    except IsADirectoryError:
+        raise DesignFileError(f"{path}: is a folder, expected a TOML design file") from None
+    except UnicodeDecodeError as e:
+        raise DesignFileError(f"{path}: not UTF-8 text (byte {e.start})") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as e:
+        raise DesignFileError(f"{path}: not valid TOML: {e}") from None
+    return parse_design(data, source=str(path))
