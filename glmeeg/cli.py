@@ -1,0 +1,137 @@
+"""Command-line interface: a thin layer over the Python API.
+
+Every input error is a :class:`~glmeeg.errors.GlmeegError`; it is caught here once, printed as
+one line on stderr and turned into exit code 2.
+"""
+
+from __future__ import annotations
+
+import sys
+from functools import wraps
+from pathlib import Path
+from typing import Annotated, Optional
+
+import typer
+
+app = typer.Typer(name="glmeeg", add_completion=False, no_args_is_help=True,
+                  pretty_exceptions_enable=False,
+                  help="Mass-univariate GLM statistics for epoched EEG: single-trial regressions in "
+                       "every participant, group t/F maps at every channel x time point, corrected "
+                       "p-values and effect sizes. Research software, not for clinical diagnosis.")
+
+
+def _reports_errors(fn):
+    @wraps(fn)
+    def wrapper(*args, **kwargs):
+        from .errors import GlmeegError
+
+        try:
+            return fn(*args, **kwargs)
+        except GlmeegError as e:
+            typer.echo(f"error: {e}", err=True)
+            raise typer.Exit(2) from None
+        except KeyboardInterrupt:
+            typer.echo("interrupted; nothing was written", err=True)
+            raise typer.Exit(130) from None
+    return wrapper
+
+
+def _version(value: bool) -> None:
+    if value:
+        from . import __version__
+
+        typer.echo(f"glmeeg {__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def _main(version: Annotated[Optional[bool], typer.Option("--version", callback=_version,
+                                                          is_eager=True, help="Print the version.")] = None) -> None:
+    """glmeeg command line."""
+
+
+def _progress(quiet: bool):
+    if quiet:
+        return None
+
+    live = sys.stderr.isatty()
+
+    def show(subject: str, done: int, total: int) -> None:
+        if live:
+            typer.echo(f"\rfitting subjects: {done}/{total} ({subject})", err=True, nl=done == total)
+        elif done == total:
+            typer.echo(f"fitted {total} subjects", err=True)
+    return show
+
+
+@app.command()
+@_reports_errors
+def run(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
+        out: Annotated[Path, typer.Option("--out", "-o", help="Output folder (created; an earlier "
+                                                               "glmeeg result there is replaced).")],
+        quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors.")] = False) -> None:
+    """Fit every subject and run every test of DESIGN; write results to OUT."""
+    from .pipeline import plan_analysis, run_analysis
+    from .results import write_run
+
+    plan = plan_analysis(design)
+    result = run_analysis(plan, progress=_progress(quiet))
+    write_run(result, out)
+    if not quiet:
+        typer.echo(str(result))
+        typer.echo(f"results written to {out}")
+
+
+@app.command()
+@_reports_errors
+def check(design: Annotated[Path, typer.Argument(help="Design file (TOML).")]) -> None:
+    """Show what `run` would do (subjects, epochs, design columns, contrasts) without fitting."""
+    from .pipeline import plan_analysis
+
+    typer.echo(plan_analysis(design).describe())
+    typer.echo("design OK")
+
+
+@app.command()
+@_reports_errors
+def show(result: Annotated[Path, typer.Argument(help="A run's output folder, or one test's folder.")]) -> None:
+    """Print a readable summary of saved results."""
+    from .results import CLINICAL_CAUTION, load_run
+
+    for t in load_run(result):
+        typer.echo(str(t))
+    typer.echo(CLINICAL_CAUTION)
+
+
+@app.command()
+@_reports_errors
+def demo(folder: Annotated[Path, typer.Argument(help="Folder for the demo study and its results.")] = Path("glmeeg-demo"),
+         subjects: Annotated[int, typer.Option(min=4, help="Number of volunteers to simulate.")] = 28,
+         seed: Annotated[int, typer.Option(help="Seed of the simulated data.")] = 20261201,
+         quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print only the verdict.")] = False) -> None:
+    """Write the demo study (alarm urgency in ship pilots and trainees), analyse it, print findings."""
+    from .pipeline import run_analysis
+    from .results import write_run
+    from .simulate import demo_verdict, write_demo_study
+
+    folder = Path(folder)
+    if folder.exists() and any(folder.iterdir()) and not (folder / "design.toml").is_file():
+        from .errors import GlmeegError
+        raise GlmeegError(f"{folder}: folder is not empty and holds no glmeeg demo; choose a new folder")
+    if not quiet:
+        typer.echo(f"writing the demo study ({subjects} volunteers) to {folder} ...", err=True)
+    design = write_demo_study(folder, n_subjects=subjects, seed=seed)
+    result = run_analysis(design, progress=_progress(quiet))
+    out = write_run(result, folder / "results")
+    if not quiet:
+        typer.echo(str(result))
+        typer.echo(f"results written to {out}")
+    typer.echo(demo_verdict(result))
+
+
+def main() -> None:  # console-script entry point
+    app()
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
