@@ -1,17 +1,19 @@
 """Subject level: ordinary least squares at every point of one subject's epochs.
 
-One factorization of the design per subject and one matrix product over all points: the
-epochs ``Y`` (trials x points) are processed in column blocks that fit in cache, each block is
-converted to float64 once, projected on the design's orthonormal basis, and its residuals are
-formed explicitly (not as a difference of sums of squares, which loses digits when the fit is
-close). The design is conditioned before it is factorized: columns are centred on the constant
-column when there is one and scaled to unit length; the betas are mapped back exactly.
+One factorization of the design per subject and one pass over the data: a compiled kernel reads
+the epochs ``Y`` (trials x points, float32 or float64) once, converts each value to float64 in a
+register and accumulates, for every point, the projection on the design's orthonormal basis and
+the sum of squares. The residual sum of squares is their difference, computed on data shifted by
+the first trial's value when the design has a constant column (so large offsets do not cancel);
+at points where the difference would still lose more than three digits (a near-exact fit) the
+residuals are formed explicitly. The design is conditioned before it is factorized: columns are
+centred on the constant column when there is one and scaled to unit length; the betas are mapped
+back exactly. Every point is computed by the same arithmetic in the same order whatever the
+block size or number of threads, so results are bitwise reproducible.
 """
 
 from __future__ import annotations
 
-import os
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -21,12 +23,12 @@ from .errors import ModelError
 
 __all__ = ["OLSFit", "fit_ols", "BLOCK_POINTS"]
 
-# Columns per block: trials x BLOCK_POINTS float64 should stay within a core's L2 cache.
-BLOCK_POINTS = 128
-
-
-def _default_threads() -> int:
-    return max(1, min(8, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count() or 1))
+# Points per block of work for a thread: the block's float64 accumulators (columns + 2 rows of
+# BLOCK_POINTS values) stay in L1/L2 while the trials stream past.
+BLOCK_POINTS = 512
+# Where ||y||^2 - ||Q^T y||^2 keeps less than this share of ||y||^2, residuals are formed
+# explicitly (the difference would lose more than three of sixteen digits).
+_CANCELLATION = 1e-3
 
 
 @dataclass(frozen=True)
@@ -72,8 +74,27 @@ def _conditioning(X: np.ndarray) -> np.ndarray:
     return M / norms
 
 
-def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS,
-            threads: int | None = None) -> OLSFit:
+def _conditioning(X: np.ndarray) -> np.ndarray:
+    """Matrix M with X @ M well conditioned: centre on a constant column, scale to unit norm."""
+    n, p = X.shape
+    M = np.eye(p)
+    const = [j for j in range(p) if X[0, j] != 0 and np.all(X[:, j] == X[0, j])]
+    if const:
+        j0 = const[0]
+        means = X.mean(axis=0)
+        for j in range(p):
+            if j != j0:
+                M[j0, j] = -means[j] / X[0, j0]
+    norms = np.linalg.norm(X @ M, axis=0)
+    norms[norms == 0] = 1.0
+    return M / norms
+
+
+def _has_constant(X: np.ndarray) -> bool:
+    return any(X[0, j] != 0 and np.all(X[:, j] == X[0, j]) for j in range(X.shape[1]))
+
+
+def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS) -> OLSFit:
     """Fit ``Y = X @ B + E`` by least squares at every column (point) of ``Y``.
 
     Parameters
@@ -81,13 +102,11 @@ def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS,
     X : numpy.ndarray
         ``(n_rows, n_columns)`` design matrix of full column rank.
     Y : numpy.ndarray
-        ``(n_rows, n_points)`` data, any floating dtype (float32 is converted block by block; a
-        memory-mapped array is read once).
-    block_points : int, default 128
-        Points per block; changes speed only, never the result.
-    threads : int, optional
-        Threads that share the blocks; default: the number of CPU cores (at most 8). Changes
-        speed only, never the result.
+        ``(n_rows, n_points)`` data, float32 or float64 (other dtypes are converted first);
+        a memory-mapped array is read once.
+    block_points : int, default 512
+        Points per block of work shared out to the threads; changes speed only, never the
+        result (bitwise).
 
     Returns
     -------
@@ -101,9 +120,11 @@ def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS,
     Notes
     -----
     With ``W = X M`` the conditioned design and ``W = Q R`` its thin QR factorization, the
-    coefficients are ``B = M R^{-1} Q^T Y`` and the residuals ``Y - Q Q^T Y``. Householder QR is
-    backward stable, so the accuracy depends on the condition number of ``W`` rather than of
-    ``X^T X`` as with the normal equations [1]_.
+    coefficients are ``B = M R^{-1} Q^T Y`` and the residual sum of squares is
+    ``||y - 1 s||² - ||Q^T (y - 1 s)||²`` (``s`` the first row when a constant column makes the
+    shift harmless, else 0), or ``||y - Q Q^T y||²`` formed explicitly where the difference
+    would cancel. Householder QR is backward stable, so the accuracy depends on the condition
+    number of ``W`` rather than of ``X^T X`` as with the normal equations [1]_.
 
     References
     ----------
@@ -112,40 +133,29 @@ def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS,
     """
     X = np.asarray(X, dtype=np.float64)
     n, p = X.shape
+    Y = np.asarray(Y)
     if Y.ndim != 2 or Y.shape[0] != n:
         raise ModelError(f"data have shape {Y.shape}; expected ({n}, points) to match the design")
     if n <= p:
         raise ModelError(f"{n} rows for {p} design columns: no residual degrees of freedom")
+    if Y.dtype not in (np.float32, np.float64):
+        Y = Y.astype(np.float64)
+    from .kernels import project_columns, residual_sum_squares
+
     M = _conditioning(X)
     Q, R = np.linalg.qr(X @ M)
-    n_points = Y.shape[1]
-    qty = np.empty((p, n_points))
-    ss = np.empty(n_points)
-    qt = np.ascontiguousarray(Q.T)
-
-    def project(lo: int, hi: int) -> None:
-        block = np.empty((n, min(block_points, hi - lo)))
-        for start in range(lo, hi, block_points):
-            stop = min(start + block_points, hi)
-            yb = block[:, : stop - start]
-            np.copyto(yb, Y[:, start:stop], casting="same_kind")
-            proj = qt @ yb
-            qty[:, start:stop] = proj
-            yb -= Q @ proj
-            ss[start:stop] = np.einsum("ij,ij->j", yb, yb)
-
-    # Blocks are independent and numpy releases the GIL in each step, so threads split the
-    # points; every point is computed by the same arithmetic whatever the split.
-    n_threads = max(1, min(threads or _default_threads(), n_points // block_points))
-    if n_threads == 1:
-        project(0, n_points)
-    else:
-        edges = np.linspace(0, n_points // block_points, n_threads + 1).astype(int) * block_points
-        edges[-1] = n_points
-        with ThreadPoolExecutor(n_threads) as pool:
-            list(pool.map(project, edges[:-1], edges[1:]))
-    betas = M @ scipy.linalg.solve_triangular(R, qty, check_finite=False)
+    shift = _has_constant(X)
+    proj, sq = project_columns(Y, np.ascontiguousarray(Q.T), shift, max(1, int(block_points)))
+    ss = sq - np.einsum("ij,ij->j", proj, proj)
+    redo = np.flatnonzero(~(ss > _CANCELLATION * sq))
+    if redo.size:
+        ss[redo] = residual_sum_squares(Y, np.ascontiguousarray(Q), proj, redo, shift)
+    if shift:  # projections of the unshifted data
+        proj += np.outer(Q.sum(axis=0), np.asarray(Y[0], dtype=np.float64))
     r_inv = scipy.linalg.solve_triangular(R, np.eye(p), check_finite=False)
-    xtx_inv = M @ r_inv @ r_inv.T @ M.T
+    to_betas = M @ r_inv  # p x p: one small product maps every point's projections to betas
+    with np.errstate(invalid="ignore", over="ignore"):  # NaN or Inf data surface in the caller
+        betas = to_betas @ proj
+    xtx_inv = to_betas @ to_betas.T
     df = n - p
     return OLSFit(betas=betas, residual_variance=ss / df, df_resid=df, xtx_inv=xtx_inv)
