@@ -58,13 +58,20 @@ class OLSFit:
         return np.atleast_2d(c) @ self.betas
 
 
+def _constant_column(X: np.ndarray) -> int | None:
+    """Index of the first non-zero constant column (an intercept), or None."""
+    for j in range(X.shape[1]):
+        if X[0, j] != 0 and np.all(X[:, j] == X[0, j]):
+            return j
+    return None
+
+
 def _conditioning(X: np.ndarray) -> np.ndarray:
     """Matrix M with X @ M well conditioned: centre on a constant column, scale to unit norm."""
-    n, p = X.shape
+    p = X.shape[1]
     M = np.eye(p)
-    const = [j for j in range(p) if X[0, j] != 0 and np.all(X[:, j] == X[0, j])]
-    if const:
-        j0 = const[0]
+    j0 = _constant_column(X)
+    if j0 is not None:
         means = X.mean(axis=0)
         for j in range(p):
             if j != j0:
@@ -72,26 +79,6 @@ def _conditioning(X: np.ndarray) -> np.ndarray:
     norms = np.linalg.norm(X @ M, axis=0)
     norms[norms == 0] = 1.0
     return M / norms
-
-
-def _conditioning(X: np.ndarray) -> np.ndarray:
-    """Matrix M with X @ M well conditioned: centre on a constant column, scale to unit norm."""
-    n, p = X.shape
-    M = np.eye(p)
-    const = [j for j in range(p) if X[0, j] != 0 and np.all(X[:, j] == X[0, j])]
-    if const:
-        j0 = const[0]
-        means = X.mean(axis=0)
-        for j in range(p):
-            if j != j0:
-                M[j0, j] = -means[j] / X[0, j0]
-    norms = np.linalg.norm(X @ M, axis=0)
-    norms[norms == 0] = 1.0
-    return M / norms
-
-
-def _has_constant(X: np.ndarray) -> bool:
-    return any(X[0, j] != 0 and np.all(X[:, j] == X[0, j]) for j in range(X.shape[1]))
 
 
 def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS) -> OLSFit:
@@ -144,7 +131,7 @@ def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS) -
 
     M = _conditioning(X)
     Q, R = np.linalg.qr(X @ M)
-    shift = _has_constant(X)
+    shift = _constant_column(X) is not None
     proj, sq = project_columns(Y, np.ascontiguousarray(Q.T), shift, max(1, int(block_points)))
     ss = sq - np.einsum("ij,ij->j", proj, proj)
     redo = np.flatnonzero(~(ss > _CANCELLATION * sq))
