@@ -20,6 +20,17 @@ app = typer.Typer(name="glmeeg", add_completion=False, no_args_is_help=True,
                        "p-values and effect sizes. Research software, not for clinical diagnosis.")
 
 
+# Width of a progress line left open on a terminal; an error first blanks it so that its own
+# line starts clean instead of being glued onto "fitting subjects: 3/28".
+_open_progress = [0]
+
+
+def _close_progress() -> None:
+    if _open_progress[0]:
+        typer.echo("\r" + " " * _open_progress[0] + "\r", err=True, nl=False)
+        _open_progress[0] = 0
+
+
 def _reports_errors(fn):
     @wraps(fn)
     def wrapper(*args, **kwargs):
@@ -28,9 +39,11 @@ def _reports_errors(fn):
         try:
             return fn(*args, **kwargs)
         except GlmeegError as e:
+            _close_progress()
             typer.echo(f"error: {e}", err=True)
             raise typer.Exit(2) from None
         except KeyboardInterrupt:
+            _close_progress()
             typer.echo("interrupted; nothing was written", err=True)
             raise typer.Exit(130) from None
     return wrapper
@@ -58,7 +71,9 @@ def _progress(quiet: bool):
 
     def show(subject: str, done: int, total: int) -> None:
         if live:
-            typer.echo(f"\rfitting subjects: {done}/{total} ({subject})", err=True, nl=done == total)
+            line = f"fitting subjects: {done}/{total} ({subject})"
+            typer.echo("\r" + line, err=True, nl=done == total)
+            _open_progress[0] = 0 if done == total else len(line)
         elif done == total:
             typer.echo(f"fitted {total} subjects", err=True)
     return show
@@ -72,8 +87,9 @@ def run(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
         quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors.")] = False) -> None:
     """Fit every subject and run every test of DESIGN; write results to OUT."""
     from .pipeline import plan_analysis, run_analysis
-    from .results import write_run
+    from .results import check_output_folder, write_run
 
+    check_output_folder(out)  # before fitting: a wrong --out should cost nothing
     plan = plan_analysis(design)
     result = run_analysis(plan, progress=_progress(quiet))
     write_run(result, out)

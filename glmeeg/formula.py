@@ -67,11 +67,13 @@ def formula_variables(formula: str, columns, *, where: str, source: str) -> tupl
             tree = ast.parse(code, mode="eval")
         except SyntaxError:
             raise FormulaError(f"{where}: term {code!r} is not a valid expression") from None
+        # Refused syntax first, so 'np.log(x)' is reported as attribute access, not as a call.
         for node in ast.walk(tree):
             if not isinstance(node, _ALLOWED_NODES):
                 raise FormulaError(f"{where}: term {code!r} uses {type(node).__name__.lower()} "
                                    "syntax, which formulas may not contain (allowed: column names, "
                                    f"numbers, operators and the functions {', '.join(FORMULA_FUNCTIONS)})")
+        for node in ast.walk(tree):
             if isinstance(node, ast.Call) and not (isinstance(node.func, ast.Name)
                                                    and node.func.id in FORMULA_FUNCTIONS):
                 what = node.func.id if isinstance(node.func, ast.Name) else "an expression"
@@ -209,9 +211,21 @@ def build_design(table: pd.DataFrame, formula: str, *, levels: dict[str, list[st
             raise FormulaError(f"{where.rsplit('.', 1)[0]}.levels: {v!r} is not a column of {source}")
     data, factors = _prepare(table, variables, levels, source=source)
     try:
-        frame = patsy.dmatrix(formula, data, eval_env=_env(), NA_action="drop", return_type="dataframe")
+        # log/sqrt of non-positive values give NaN; reported below as an error, not as a warning.
+        with np.errstate(all="ignore"):
+            frame = patsy.dmatrix(formula, data, eval_env=_env(), NA_action="drop", return_type="dataframe")
     except patsy.PatsyError as e:
         raise FormulaError(f"{where}: {str(e).splitlines()[0]}") from None
+    if frame.shape[1] == 0:
+        raise FormulaError(f"{where}: formula {formula!r} gives no design columns")
+    present = data.notna().all(axis=1) if variables else pd.Series(True, index=data.index)
+    lost = present & ~data.index.isin(frame.index)
+    if lost.any():
+        first = lost.index[np.flatnonzero(lost.to_numpy())[0]]
+        at = f"row {first + 2}" if isinstance(first, (int, np.integer)) else f"subject {first}"
+        raise FormulaError(f"{where}: the formula gives a missing value at {int(lost.sum())} row(s) of "
+                           f"{source} whose variables are present (first: {at}); e.g. log or sqrt "
+                           "of a non-positive value")
     if frame.shape[0] == 0:
         raise FormulaError(f"{where}: every row of {source} has a missing value in "
                            f"{', '.join(variables)}")
@@ -224,6 +238,10 @@ def build_design(table: pd.DataFrame, formula: str, *, levels: dict[str, list[st
 def _check_columns(X: np.ndarray, design: Design, *, who: str) -> float:
     names = design.column_names
     n, p = X.shape
+    inf = [names[j] for j in range(p) if not np.isfinite(X[:, j]).all()]
+    if inf:
+        raise FormulaError(f"{who}: design column(s) {', '.join(inf)} hold infinite values "
+                           "(e.g. a division by zero)")
     zero = [names[j] for j in range(p) if not np.any(X[:, j])]
     if zero:
         raise FormulaError(f"{who}: design column(s) {', '.join(zero)} are all zero")
@@ -325,7 +343,7 @@ def contrast_matrix(design: Design, spec, *, where: str) -> ContrastMatrix:
         else:
             vec = np.asarray(item, dtype=float)
             if vec.ndim != 1 or vec.size != len(names):
-                raise ContrastError(f"{where}: vector {list(np.ravel(vec))} has {vec.size} weights; "
+                raise ContrastError(f"{where}: vector {_vector_label(np.ravel(vec))} has {vec.size} weights; "
                                     f"the design has {len(names)} columns ({', '.join(names)})")
             rows.append(vec)
             labels.append(_vector_label(vec))

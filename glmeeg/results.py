@@ -22,13 +22,14 @@ import platform
 import shutil
 import sys
 import tempfile
+import zipfile
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
 import numpy as np
 import pandas as pd
-from pydantic import BaseModel, ConfigDict, PlainSerializer, PlainValidator
+from pydantic import BaseModel, ConfigDict, PlainSerializer, PlainValidator, ValidationError
 
 from .axes import Axes
 from .errors import GlmeegError
@@ -36,7 +37,7 @@ from .inference.corrections import Correction
 from .spec import TestSpec
 
 __all__ = ["Provenance", "SubjectSummary", "TestResult", "RunResult", "load_result", "load_run",
-           "write_run", "provenance", "CAUTION", "CLINICAL_CAUTION"]
+           "write_run", "check_output_folder", "provenance", "CAUTION", "CLINICAL_CAUTION"]
 
 SCHEMA_VERSION = 1
 CLINICAL_CAUTION = ("glmeeg is research software, not a clinical diagnostic device: clinical EEG "
@@ -310,9 +311,16 @@ def load_result(path: str | Path) -> TestResult:
         with np.load(path, allow_pickle=False) as z:
             meta = json.loads(str(z["meta"]))
             arrays = {k: z[k] for k in _ARRAYS}
-    except (OSError, ValueError, KeyError) as e:
-        raise GlmeegError(f"{path}: not a glmeeg result file ({e})") from None
-    return TestResult.model_validate({**meta, **arrays})
+    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile) as e:
+        raise GlmeegError(f"{path}: not a glmeeg result file ({e or type(e).__name__})") from None
+    if not isinstance(meta, dict):
+        raise GlmeegError(f"{path}: not a glmeeg result file (settings are not a JSON object)")
+    try:
+        return TestResult.model_validate({**meta, **arrays})
+    except ValidationError as e:
+        err = e.errors()[0]
+        where = ".".join(map(str, err["loc"])) or "(top level)"
+        raise GlmeegError(f"{path}: not a valid glmeeg result ({where}: {err['msg']})") from None
 
 
 class RunResult(_Frozen):
@@ -349,6 +357,34 @@ class RunResult(_Frozen):
                          + [str(t) for t in self.tests] + [CLINICAL_CAUTION])
 
 
+def check_output_folder(out: str | Path) -> Path:
+    """Refuse an output folder that :func:`write_run` must not replace; return it as a Path.
+
+    Called before any fitting, so a wrong ``--out`` costs nothing; :func:`write_run` checks again.
+
+    Raises
+    ------
+    GlmeegError
+        ``out`` exists and is not a folder, or is a non-empty folder without a glmeeg result.
+    """
+    out = Path(out)
+    if out.exists() or out.is_symlink():
+        if not out.is_dir():
+            raise GlmeegError(f"{out}: exists and is not a folder; expected a new folder or an "
+                              "earlier glmeeg result folder")
+        if any(out.iterdir()) and not (out / "run.json").is_file():
+            raise GlmeegError(f"{out}: folder is not empty and holds no glmeeg result; choose a new "
+                              "or empty output folder")
+    parent = out.absolute().parent
+    while not parent.exists() and parent != parent.parent:
+        parent = parent.parent
+    if not parent.is_dir():
+        raise GlmeegError(f"{out}: cannot be created, {parent} is a file; expected a folder path")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise GlmeegError(f"{out}: cannot be created, no permission to write in {parent}")
+    return out
+
+
 def write_run(run: RunResult, out: str | Path) -> Path:
     """Write a run into folder ``out`` atomically.
 
@@ -361,13 +397,7 @@ def write_run(run: RunResult, out: str | Path) -> Path:
     GlmeegError
         ``out`` exists, is not empty and is not a glmeeg result folder.
     """
-    out = Path(out)
-    if out.exists():
-        if not out.is_dir():
-            raise GlmeegError(f"{out}: exists and is not a folder")
-        if any(out.iterdir()) and not (out / "run.json").is_file():
-            raise GlmeegError(f"{out}: folder is not empty and holds no glmeeg result; choose a new "
-                              "or empty output folder")
+    out = check_output_folder(out)
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
     umask = os.umask(0)
@@ -400,6 +430,9 @@ def load_run(folder: str | Path) -> list[TestResult]:
         raise GlmeegError(f"{folder}: not a glmeeg result folder (no run.json or result.npz)")
     try:
         names = json.loads(run.read_text())["tests"]
-    except (ValueError, KeyError) as e:
+    except (ValueError, KeyError, TypeError) as e:
         raise GlmeegError(f"{run}: unreadable run summary ({e})") from None
+    if not isinstance(names, list) or not all(isinstance(n, str) and n not in ("", ".", "..")
+                                              and Path(n).name == n for n in names):
+        raise GlmeegError(f"{run}: unreadable run summary ('tests' must list the test folder names)")
     return [load_result(folder / n) for n in names]

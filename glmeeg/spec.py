@@ -12,12 +12,14 @@ Unknown keys are an error, so a misspelt option never passes silently.
 
 from __future__ import annotations
 
+import math
 import re
+import string
 import tomllib
 from pathlib import Path
 from typing import Annotated, Literal, Union
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
 
 from .errors import DesignFileError
 
@@ -45,8 +47,9 @@ class DataSpec(_Strict):
     subjects: str | None = Field(None, description="subjects table (CSV): 'subject' plus between-subject variables")
     channels: str = Field(description="sensors table (tab-separated): 'name', optional x, y, z")
     epochs: str = Field(description="path pattern of the per-subject epoch arrays, containing '{subject}'")
-    time_start: float = Field(description="time of the first sample, seconds")
-    sampling_rate: float = Field(gt=0, description="samples per second (Hz)")
+    # strict: a TOML true or "100" is a mistake, not a number; finite: inf/nan would give no time axis.
+    time_start: float = Field(strict=True, allow_inf_nan=False, description="time of the first sample, seconds")
+    sampling_rate: float = Field(gt=0, strict=True, allow_inf_nan=False, description="samples per second (Hz)")
     frequencies: list[float] | None = Field(None, description="frequencies (Hz) of 4-D epoch arrays")
 
     @field_validator("epochs")
@@ -54,6 +57,12 @@ class DataSpec(_Strict):
     def _has_placeholder(cls, v: str) -> str:
         if "{subject}" not in v:
             raise ValueError("must contain the placeholder {subject}, e.g. 'epochs/{subject}.npy'")
+        try:
+            fields = [(f, spec, conv) for _, f, spec, conv in string.Formatter().parse(v) if f is not None]
+        except ValueError:
+            fields = None  # unbalanced braces
+        if fields is None or any(f != ("subject", "", None) for f in fields):
+            raise ValueError("must contain '{subject}' and no other braces, e.g. 'epochs/{subject}.npy'")
         return v
 
     @field_validator("frequencies")
@@ -62,7 +71,7 @@ class DataSpec(_Strict):
         if v is not None:
             if not v:
                 raise ValueError("must not be empty (leave it out for channel x time data)")
-            if any(f < 0 for f in v) or any(b <= a for a, b in zip(v, v[1:])):
+            if any(not math.isfinite(f) or f < 0 for f in v) or any(b <= a for a, b in zip(v, v[1:])):
                 raise ValueError("must be non-negative and strictly increasing")
         return v
 
@@ -109,7 +118,7 @@ class TestSpec(_Strict):
     def _safe_name(cls, v: str) -> str:
         if not _SAFE_NAME.match(v) or v in (".", ".."):
             raise ValueError("must be 1-100 letters, digits, '.', '_' or '-', starting with a letter "
-                             f"or digit (it becomes a folder name); got {v!r}")
+                             "or digit (it becomes a folder name)")
         return v
 
     @field_validator("subject_contrast", "group_contrast")
@@ -130,13 +139,15 @@ class DesignSpec(_Strict):
     group_model: GroupModelSpec = GroupModelSpec()
     test: list[TestSpec] = Field(min_length=1, description="one or more [[test]] tables")
 
-    @model_validator(mode="after")
-    def _unique_tests(self) -> "DesignSpec":
-        names = [t.name.lower() for t in self.test]
+    @field_validator("test")
+    @classmethod
+    def _unique_tests(cls, v: list[TestSpec]) -> list[TestSpec]:
+        # Case-insensitively: the names become folder names on case-insensitive file systems too.
+        names = [t.name.lower() for t in v]
         dupes = sorted({n for n in names if names.count(n) > 1})
         if dupes:
             raise ValueError(f"test names must be unique (case-insensitively); repeated: {', '.join(dupes)}")
-        return self
+        return v
 
 
 def _location(loc: tuple) -> str:
@@ -160,7 +171,8 @@ def _one_line(err: ValidationError, source: str) -> str:
     if e["type"] == "missing":
         return f"{source}: missing required key '{loc}'"
     got = e.get("input")
-    shown = "" if isinstance(got, dict) else f" (got {got!r})"
+    tables = isinstance(got, dict) or (isinstance(got, list) and any(isinstance(g, dict) for g in got))
+    shown = "" if tables else f" (got {got!r})"
     if len(shown) > 80:
         shown = shown[:77] + "...)"
     return f"{source}: {loc}: {msg}{shown}"

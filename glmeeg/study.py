@@ -29,6 +29,8 @@ def read_table(path: Path, *, sep: str, label: str, required: tuple[str, ...],
                text_columns: tuple[str, ...] = ()) -> pd.DataFrame:
     """Read a CSV/TSV table strictly: UTF-8, the expected separator, required columns present."""
     kind = "tab-separated" if sep == "\t" else "comma-separated"
+    if path.is_dir():
+        raise StudyError(f"{label}: is a folder ({path}); expected a {kind} table")
     if not path.is_file():
         raise StudyError(f"{label}: file not found ({path})")
     raw = path.read_bytes()
@@ -221,6 +223,9 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
     chan_path = _resolve(root, spec.channels)
     sensors = read_table(chan_path, sep="\t", label=spec.channels, required=("name",),
                          text_columns=("name",))
+    empty = sensors["name"].isna() | (sensors["name"].astype(str).str.strip() == "")
+    if empty.any():
+        raise StudyError(f"{spec.channels} row {int(np.flatnonzero(empty.to_numpy())[0]) + 2}: empty channel name")
     sensors["name"] = sensors["name"].astype(str).str.strip()
     if sensors["name"].duplicated().any():
         raise StudyError(f"{spec.channels}: channel {sensors['name'][sensors['name'].duplicated()].iloc[0]} "
@@ -241,6 +246,9 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
         if arr.ndim not in (3, 4):
             raise StudyError(f"subject {s}: {label} has {arr.ndim} dimensions; expected 3 (epochs, "
                              "channels, times) or 4 (epochs, channels, frequencies, times)")
+        if 0 in arr.shape[1:]:
+            raise StudyError(f"subject {s}: {label} has shape {arr.shape}; every dimension but the "
+                             "first (epochs) must be at least 1")
         if shape0 is None:
             shape0, first = arr.shape[1:], s
             if arr.shape[1] != len(sensors):
@@ -268,8 +276,8 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
         bad = ep.isna() | (ep != np.floor(ep)) | (ep < 0)
         if bad.any():
             row = int(np.flatnonzero(bad.to_numpy())[0])
-            raise StudyError(f"{spec.trials} row {row + 2}: epoch {trials['epoch'].iloc[row]!r} is not "
-                             "a non-negative whole number")
+            raise StudyError(f"{spec.trials} row {row + 2}: epoch {str(trials['epoch'].iloc[row])!r} is "
+                             "not a non-negative whole number")
         trials["epoch"] = ep.astype(np.int64)
         for s, rows in trials.groupby("subject", sort=False):
             e = rows["epoch"].to_numpy()

@@ -133,15 +133,16 @@ def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS) -
     Q, R = np.linalg.qr(X @ M)
     shift = _constant_column(X) is not None
     proj, sq = project_columns(Y, np.ascontiguousarray(Q.T), shift, max(1, int(block_points)))
-    ss = sq - np.einsum("ij,ij->j", proj, proj)
-    redo = np.flatnonzero(~(ss > _CANCELLATION * sq))
-    if redo.size:
-        ss[redo] = residual_sum_squares(Y, np.ascontiguousarray(Q), proj, redo, shift)
-    if shift:  # projections of the unshifted data
-        proj += np.outer(Q.sum(axis=0), np.asarray(Y[0], dtype=np.float64))
     r_inv = scipy.linalg.solve_triangular(R, np.eye(p), check_finite=False)
     to_betas = M @ r_inv  # p x p: one small product maps every point's projections to betas
-    with np.errstate(invalid="ignore", over="ignore"):  # NaN or Inf data surface in the caller
+    # NaN or Inf in the data make that point's results non-finite; the caller reports them.
+    with np.errstate(invalid="ignore", over="ignore"):
+        ss = sq - np.einsum("ij,ij->j", proj, proj)
+        redo = np.flatnonzero(~(ss > _CANCELLATION * sq))
+        if redo.size:
+            ss[redo] = residual_sum_squares(Y, np.ascontiguousarray(Q), proj, redo, shift)
+        if shift:  # projections of the unshifted data
+            proj += np.outer(Q.sum(axis=0), np.asarray(Y[0], dtype=np.float64))
         betas = to_betas @ proj
     xtx_inv = to_betas @ to_betas.T
     df = n - p
