@@ -113,6 +113,8 @@ class Study:
         """
         arr = _open_epochs(self.epoch_files[subject], subject, self.epoch_label(subject))
         data = np.asarray(arr[np.asarray(epochs, dtype=np.intp)])
+        if not data.dtype.isnative:  # arrays written on a big-endian machine
+            data = data.astype(data.dtype.newbyteorder("="))
         return data.reshape(data.shape[0], -1)
 
 
@@ -139,7 +141,7 @@ def _open_epochs(path: Path, subject: str, label: str) -> np.ndarray:
                          f"({str(e).splitlines()[0] if str(e) else type(e).__name__})") from None
     if not isinstance(arr, np.ndarray):
         raise StudyError(f"subject {subject}: {label} is an archive of several arrays; expected one .npy array")
-    if arr.dtype not in (np.float32, np.float64):
+    if arr.dtype.kind != "f" or arr.dtype.itemsize not in (4, 8):
         raise StudyError(f"subject {subject}: {label} has dtype {arr.dtype}; expected float32 or float64")
     return arr
 

@@ -17,3 +17,13 @@ def test_planted_effect_found_and_saved(tmp_path):
     out = glmeeg.write_run(run, tmp_path / "out")
     back = glmeeg.load_result(out / "b-vs-a")
     np.testing.assert_array_equal(back.statistic, t.statistic)
+
+
+def test_big_endian_and_float64_arrays_give_the_same_result(tmp_path):
+    # Arrays written on a big-endian machine hold the same numbers; byte order must not matter.
+    design = write_study(tmp_path / "s", effect=2.0, seed=4, n_subjects=10, dtype=np.float64)
+    native = glmeeg.run_analysis(design).test("b-vs-a")
+    for f in (tmp_path / "s" / "epochs").glob("*.npy"):
+        np.save(f, np.load(f).astype(">f8"))
+    swapped = glmeeg.run_analysis(design).test("b-vs-a")
+    np.testing.assert_array_equal(swapped.statistic, native.statistic)
