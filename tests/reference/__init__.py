@@ -1,0 +1,1 @@
+"""Published reference values used by the reference tests, each module citing its source."""
