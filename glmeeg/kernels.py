@@ -18,8 +18,10 @@ def project_columns(Y, qt, shift, block):  # pragma: no cover - compiled
     where ``s_j = Y[0, j]`` if ``shift`` else 0: return ``qt @ y`` and ``y @ y`` in float64.
 
     One pass over ``Y``; each value is converted to float64 once, in a register. Columns are
-    split into blocks of ``block`` across threads; each column's sums run in row order, so the
-    result does not depend on the block size or the number of threads.
+    split into blocks of ``block`` across threads, and rows are taken four at a time so each
+    pass over a block's accumulators (kept in cache) serves four rows. Each column's sums run in
+    a fixed order of rows, so the result does not depend on the block size or the number of
+    threads.
     """
     n, m = Y.shape
     p = qt.shape[0]
@@ -32,20 +34,44 @@ def project_columns(Y, qt, shift, block):  # pragma: no cover - compiled
         w = hi - lo
         acc = np.zeros((p, w))
         s = np.zeros(w)
-        v = np.empty(w)
+        v0 = np.empty(w)
+        v1 = np.empty(w)
+        v2 = np.empty(w)
+        v3 = np.empty(w)
         y0 = np.zeros(w)
         if shift:
             for j in range(w):
                 y0[j] = Y[0, lo + j]
-        for i in range(n):
+        i = 0
+        while i + 4 <= n:
             for j in range(w):
-                v[j] = np.float64(Y[i, lo + j]) - y0[j]
-            for j in range(w):
-                s[j] += v[j] * v[j]
+                a0 = np.float64(Y[i, lo + j]) - y0[j]
+                a1 = np.float64(Y[i + 1, lo + j]) - y0[j]
+                a2 = np.float64(Y[i + 2, lo + j]) - y0[j]
+                a3 = np.float64(Y[i + 3, lo + j]) - y0[j]
+                v0[j] = a0
+                v1[j] = a1
+                v2[j] = a2
+                v3[j] = a3
+                s[j] += (a0 * a0 + a1 * a1) + (a2 * a2 + a3 * a3)
             for k in range(p):
-                q = qt[k, i]
+                q0 = qt[k, i]
+                q1 = qt[k, i + 1]
+                q2 = qt[k, i + 2]
+                q3 = qt[k, i + 3]
                 for j in range(w):
-                    acc[k, j] += q * v[j]
+                    acc[k, j] += (q0 * v0[j] + q1 * v1[j]) + (q2 * v2[j] + q3 * v3[j])
+            i += 4
+        while i < n:
+            for j in range(w):
+                a0 = np.float64(Y[i, lo + j]) - y0[j]
+                v0[j] = a0
+                s[j] += a0 * a0
+            for k in range(p):
+                q0 = qt[k, i]
+                for j in range(w):
+                    acc[k, j] += q0 * v0[j]
+            i += 1
         for k in range(p):
             for j in range(w):
                 proj[k, lo + j] = acc[k, j]
