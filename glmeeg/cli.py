@@ -122,7 +122,7 @@ def show(result: Annotated[Path, typer.Argument(help="A run's output folder, or 
 @app.command()
 @_reports_errors
 def demo(folder: Annotated[Path, typer.Argument(help="Folder for the demo study and its results.")] = Path("glmeeg-demo"),
-         subjects: Annotated[int, typer.Option(min=4, help="Number of volunteers to simulate.")] = 28,
+         subjects: Annotated[int, typer.Option(min=4, max=99, help="Number of volunteers to simulate (4-99).")] = 28,
          seed: Annotated[int, typer.Option(help="Seed of the simulated data.")] = 20261201,
          quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print only the verdict.")] = False) -> None:
     """Write the demo study (alarm urgency in ship pilots and trainees), analyse it, print findings."""
