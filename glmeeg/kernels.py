@@ -98,3 +98,59 @@ def residual_sum_squares(Y, q, proj, columns, shift):  # pragma: no cover - comp
             s += r * r
         out[c] = s
     return out
+
+
+@njit(parallel=True, cache=True, nogil=True)
+def weighted_row_sums(W, R, block):  # pragma: no cover - compiled
+    """``W @ R`` for ``W`` (rows x n) and ``R`` (n x columns), float64, with every output value
+    summed over ``n`` in the same order whatever the shapes: row ``r`` of the result depends only
+    on ``W[r]`` and ``R``, so a permutation's statistics are bitwise the same in any batch.
+
+    Columns are split into cache-sized blocks across threads; within a block, rows of ``W`` are
+    taken four at a time so that each value of ``R`` read serves four output rows.
+    """
+    rows, n = W.shape
+    m = R.shape[1]
+    out = np.empty((rows, m))
+    n_blocks = (m + block - 1) // block
+    for b in prange(n_blocks):
+        lo = b * block
+        hi = min(lo + block, m)
+        w = hi - lo
+        a0 = np.empty(w)
+        a1 = np.empty(w)
+        a2 = np.empty(w)
+        a3 = np.empty(w)
+        r = 0
+        while r + 4 <= rows:
+            a0[:] = 0.0
+            a1[:] = 0.0
+            a2[:] = 0.0
+            a3[:] = 0.0
+            for i in range(n):
+                c0 = W[r, i]
+                c1 = W[r + 1, i]
+                c2 = W[r + 2, i]
+                c3 = W[r + 3, i]
+                for j in range(w):
+                    x = R[i, lo + j]
+                    a0[j] += c0 * x
+                    a1[j] += c1 * x
+                    a2[j] += c2 * x
+                    a3[j] += c3 * x
+            for j in range(w):
+                out[r, lo + j] = a0[j]
+                out[r + 1, lo + j] = a1[j]
+                out[r + 2, lo + j] = a2[j]
+                out[r + 3, lo + j] = a3[j]
+            r += 4
+        while r < rows:
+            a0[:] = 0.0
+            for i in range(n):
+                c0 = W[r, i]
+                for j in range(w):
+                    a0[j] += c0 * R[i, lo + j]
+            for j in range(w):
+                out[r, lo + j] = a0[j]
+            r += 1
+    return out

@@ -19,8 +19,9 @@ import pandas as pd
 from .errors import ModelError, StudyError
 from .formula import ContrastMatrix, Design, DesignMatrix, build_design, contrast_matrix, design_matrix
 from .group_level import group_test
-from .inference.corrections import adjust_p, correction_from_name
-from .results import Provenance, RunResult, SubjectSummary, TestResult, provenance
+from .findings import describe_clusters, significant_regions
+from .inference.corrections import PERMUTATION_METHODS, adjust_p
+from .results import Provenance, Resampling, RunResult, SubjectSummary, TestResult, provenance
 from .spec import DesignSpec, TestSpec, load_design
 from .study import Study, read_study
 from .subject_level import fit_ols
@@ -43,6 +44,7 @@ class TestPlan:
     subjects: tuple[str, ...]
     group_contrast: ContrastMatrix
     notes: tuple[str, ...]
+    resampling: str | None = None
 
 
 @dataclass(frozen=True)
@@ -56,6 +58,9 @@ class AnalysisPlan:
     subject_matrices: dict[str, DesignMatrix]
     tests: tuple[TestPlan, ...]
     warnings: tuple[str, ...]
+    sensor_graph: object | None = None
+    graph: tuple[np.ndarray, np.ndarray] | None = None
+    extra_inputs: dict | None = None
 
     def describe(self) -> str:
         """What will be done, as readable text (``glmeeg check``)."""
@@ -76,14 +81,19 @@ class AnalysisPlan:
                          f"{X.condition_number:9.3g}")
         for t in self.tests:
             kind = "t" if t.subject_contrast.n_rows == 1 and t.group_contrast.n_rows == 1 else "F"
-            lines.append(f"test {t.spec.name}: {kind} test, {len(t.subjects)} subjects, correction "
-                         f"{t.spec.correction}, alpha {t.spec.alpha:g}, {t.spec.alternative}")
+            lines.append(f"test {t.spec.name}: {kind} test, {len(t.subjects)} subjects, "
+                         f"{t.spec.correction_settings().describe()}, alpha {t.spec.alpha:g}, "
+                         f"{t.spec.alternative}" + (f"; resampling: {t.resampling}" if t.resampling else ""))
             for lab, row in zip(t.subject_contrast.labels, t.subject_contrast.matrix):
                 lines.append(f"  subject contrast {lab}: {_weights(self.subject_design.column_names, row)}")
             lines.append(f"  group model: {t.group_formula}; columns {', '.join(t.group_design.column_names)}")
             for lab, row in zip(t.group_contrast.labels, t.group_contrast.matrix):
                 lines.append(f"  group contrast {lab}: {_weights(t.group_design.column_names, row)}")
             lines += [f"  note: {n}" for n in t.notes]
+        if self.sensor_graph is not None:
+            sg = self.sensor_graph
+            lines.append(f"neighbours: {sg.method}; {len(sg.edges)} sensor pairs, "
+                         f"{self.graph[1].size // 2} point pairs")
         lines += [f"warning: {w}" for w in self.warnings]
         return "\n".join(lines)
 
@@ -154,13 +164,53 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
         if (k > 1 or m > 1) and t.alternative != "two-sided":
             raise ModelError(f"{where}: alternative {t.alternative!r} applies to t tests only; this "
                              "is an F test (use two-sided)")
+        scheme = None
+        if t.correction in PERMUTATION_METHODS:
+            from .inference.permutation import choose_resampling
+            try:
+                scheme = choose_resampling(gm.matrix, gc.matrix, requested=t.resampling or "auto")
+            except ModelError as e:
+                raise ModelError(f"{where}: {e}") from None
         if n < 16:
             notes.append(f"{n} subjects: fewer than the 16-32 common in EEG group studies "
                          "(common practice); estimates and power may be poor")
         tests.append(TestPlan(spec=t, subject_contrast=sc, group_formula=gformula, group_design=gdesign,
-                              group_matrix=gm, subjects=included, group_contrast=gc, notes=tuple(notes)))
+                              group_matrix=gm, subjects=included, group_contrast=gc, notes=tuple(notes),
+                              resampling=scheme))
+    sgraph, graph, extra = None, None, {}
+    needs = {t.spec.correction for t in tests} & set(PERMUTATION_METHODS)
+    if needs:
+        sgraph, graph, extra = _neighbour_graph(spec, study, root, required=bool(needs - {"max"}),
+                                                warnings=warnings)
     return AnalysisPlan(design_file=design_file, spec=spec, study=study, subject_design=sdesign,
-                        subject_matrices=matrices, tests=tuple(tests), warnings=tuple(warnings))
+                        subject_matrices=matrices, tests=tuple(tests), warnings=tuple(warnings),
+                        sensor_graph=sgraph, graph=graph, extra_inputs=extra)
+
+
+def _neighbour_graph(spec: DesignSpec, study: Study, root, *, required: bool, warnings: list):
+    """Sensor neighbours and the graph of points, for cluster and TFCE corrections."""
+    from .errors import GlmeegError
+    from .inference.graph import graph_arrays, points_graph
+    from .sensors import sensor_graph
+    from .study import read_neighbour_table
+
+    table, extra = None, {}
+    if spec.data.neighbours is not None:
+        path = Path(root) / spec.data.neighbours
+        table = read_neighbour_table(path, label=spec.data.neighbours)
+        extra["neighbours"] = path
+    try:
+        sg = sensor_graph(study.sensors, neighbour_table=table, neighbour_label=spec.data.neighbours or "")
+    except GlmeegError:
+        if required:
+            raise
+        warnings.append("no sensor neighbours (no positions or neighbour table): significant "
+                        "points are not grouped into regions")
+        return None, None, extra
+    if sg.isolated:
+        warnings.append(f"{len(sg.isolated)} sensor(s) have no neighbours and form clusters on their "
+                        f"own: {', '.join(sg.isolated)}")
+    return sg, graph_arrays(points_graph(sg.adjacency(), study.axes.shape)), extra
 
 
 @dataclass(frozen=True)
@@ -221,15 +271,50 @@ def fit_subjects(plan: AnalysisPlan, *, progress: Callable[[str, int, int], None
 
 
 def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, *,
-               prov: Provenance) -> TestResult:
+               prov: Provenance, memory_limit: int = 512 * 2**20) -> TestResult:
     """Run one test at the group level and apply its correction."""
     idx = [estimates.subjects.index(s) for s in test.subjects]
     Y = estimates.estimates[idx][:, estimates.rows[test.spec.name], :]
     stats = group_test(Y, test.group_matrix.matrix, test.group_contrast.matrix,
                        alternative=test.spec.alternative)
-    correction = correction_from_name(test.spec.correction)
-    p_corr = adjust_p(stats.p, correction)
-    significant = np.nan_to_num(p_corr, nan=1.0) <= test.spec.alpha
+    correction = test.spec.correction_settings()
+    alpha = test.spec.alpha
+    notes = list(test.notes)
+    extra: dict = {}
+    if correction.method in PERMUTATION_METHODS:
+        from .inference.permutation import permutation_test
+
+        perm = permutation_test(Y, test.group_matrix.matrix, test.group_contrast.matrix,
+                                kind=stats.kind, df=stats.df, alternative=test.spec.alternative,
+                                correction=correction, graph=plan.graph, memory_limit=memory_limit)
+        p_corr = perm.p_corrected
+        significant = np.nan_to_num(p_corr, nan=1.0) <= alpha
+        labels, p_by_id, kind = None, {}, "region"
+        if perm.cluster_labels is not None:
+            labels, kind = perm.cluster_labels, "cluster"
+            p_by_id = {c["id"]: c["p"] for c in perm.clusters}
+        elif plan.graph is not None:
+            labels = significant_regions(significant, np.nan_to_num(stats.statistic), plan.graph)
+            for cid in range(1, int(labels.max()) + 1):
+                p_by_id[cid] = float(np.nanmin(p_corr[labels == cid]))
+        if labels is not None:
+            extra["cluster"] = labels
+            extra["clusters"] = describe_clusters(labels, np.nan_to_num(stats.statistic), plan.study.axes,
+                                                  p_by_id, alpha=alpha, kind=kind)
+        extra.update(p_permutation=perm.p_uncorrected, null_distribution=perm.null_distribution,
+                     resampling=Resampling(scheme=perm.scheme, n_resamplings=perm.n_resamplings,
+                                           exhaustive=perm.exhaustive, seed=perm.seed,
+                                           cluster_threshold=perm.threshold))
+        if perm.enhanced is not None:
+            extra["tfce"] = perm.enhanced
+        if perm.exhaustive:
+            smallest = 1.0 / perm.n_resamplings
+            notes.append(f"all {perm.n_resamplings} possible resamplings were used; the smallest "
+                         f"possible p is {smallest:.3g}"
+                         + (f", above alpha {alpha:g}: nothing can be significant" if smallest > alpha else ""))
+    else:
+        p_corr = adjust_p(stats.p, correction)
+        significant = np.nan_to_num(p_corr, nan=1.0) <= alpha
     labels = test.subject_contrast.labels if test.subject_contrast.n_rows > 1 else test.group_contrast.labels
     if test.subject_contrast.n_rows == 1 and test.group_contrast.n_rows == 1:
         labels = (f"{test.subject_contrast.labels[0]} | {test.group_contrast.labels[0]}",)
@@ -247,11 +332,12 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
                       effect_size_corrected=stats.effect_size_corrected,
                       effect_size_name=stats.effect_size_name,
                       effect_size_corrected_name=stats.effect_size_corrected_name,
-                      notes=test.notes, provenance=prov)
+                      notes=tuple(notes), provenance=prov, **extra)
 
 
 def run_analysis(design: str | Path | AnalysisPlan, *,
-                 progress: Callable[[str, int, int], None] | None = None) -> RunResult:
+                 progress: Callable[[str, int, int], None] | None = None,
+                 memory_limit: int = 512 * 2**20) -> RunResult:
     """Run every test of a design file.
 
     Parameters
@@ -260,6 +346,8 @@ def run_analysis(design: str | Path | AnalysisPlan, *,
         A design file, or a plan from :func:`plan_analysis`.
     progress : callable, optional
         Called as ``progress(subject, done, total)`` after each subject's fit.
+    memory_limit : int, default 512 MiB
+        Bound on the memory of one batch of resampled maps in permutation tests.
 
     Returns
     -------
@@ -272,9 +360,10 @@ def run_analysis(design: str | Path | AnalysisPlan, *,
     >>> print(run.test("urgency-high-vs-low"))             # doctest: +SKIP
     """
     plan = design if isinstance(design, AnalysisPlan) else plan_analysis(design)
-    prov = provenance(design_file=plan.design_file, inputs=plan.study.input_files)
+    prov = provenance(design_file=plan.design_file,
+                      inputs={**plan.study.input_files, **(plan.extra_inputs or {})})
     est = fit_subjects(plan, progress=progress)
-    tests = tuple(test_group(plan, t, est, prov=prov) for t in plan.tests)
+    tests = tuple(test_group(plan, t, est, prov=prov, memory_limit=memory_limit) for t in plan.tests)
     return RunResult(design=plan.spec.model_dump(mode="json"), subject_formula=plan.subject_design.formula,
                      subject_columns=plan.subject_design.column_names, subjects=est.summaries,
                      tests=tests, warnings=plan.warnings, provenance=prov)

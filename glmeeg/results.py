@@ -33,6 +33,7 @@ from pydantic import BaseModel, ConfigDict, PlainSerializer, PlainValidator, Val
 
 from .axes import Axes
 from .errors import GlmeegError
+from .findings import CLUSTER_CAUTION, Cluster, clusters_frame
 from .inference.corrections import Correction
 from .spec import TestSpec
 
@@ -118,6 +119,20 @@ class SubjectSummary(_Frozen):
 
 _ARRAYS = ("estimate", "standard_error", "statistic", "p", "p_corrected", "significant",
            "effect_size", "effect_size_corrected", "subject_contrast", "group_contrast")
+# Arrays present only for permutation-based corrections.
+_OPTIONAL_ARRAYS = ("p_permutation", "tfce", "cluster", "null_distribution")
+_MAPS = ("estimate", "standard_error", "statistic", "p", "p_corrected", "significant",
+         "effect_size", "effect_size_corrected", "p_permutation", "tfce", "cluster")
+
+
+class Resampling(_Frozen):
+    """How a permutation-based correction resampled the data."""
+
+    scheme: Literal["sign-flip", "permute"]
+    n_resamplings: int
+    exhaustive: bool
+    seed: int
+    cluster_threshold: float | None = None
 
 
 class TestResult(_Frozen):
@@ -155,6 +170,12 @@ class TestResult(_Frozen):
     effect_size_corrected: Array
     effect_size_name: str
     effect_size_corrected_name: str
+    p_permutation: Array | None = None
+    tfce: Array | None = None
+    cluster: Array | None = None
+    clusters: tuple[Cluster, ...] = ()
+    resampling: Resampling | None = None
+    null_distribution: Array | None = None
     notes: tuple[str, ...] = ()
     provenance: Provenance
 
@@ -172,9 +193,12 @@ class TestResult(_Frozen):
 
     def map(self, field: str) -> np.ndarray:
         """A map as an array of shape ``axes.shape`` (``(rows, *axes.shape)`` for ``estimate``)."""
-        if field not in _ARRAYS or field in ("subject_contrast", "group_contrast"):
-            raise KeyError(f"{field!r} is not a map; maps: {', '.join(_ARRAYS[:8])}")
-        return self.axes.unflatten(getattr(self, field))
+        if field not in _MAPS:
+            raise KeyError(f"{field!r} is not a map; maps: {', '.join(_MAPS)}")
+        value = getattr(self, field)
+        if value is None:
+            raise KeyError(f"{field!r} is not computed by correction '{self.correction.method}'")
+        return self.axes.unflatten(value)
 
     def to_frame(self) -> pd.DataFrame:
         """Tidy table, one row per point (the content of ``points.csv``).
@@ -191,12 +215,23 @@ class TestResult(_Frozen):
             for lab, row in zip(self.estimate_labels, self.estimate):
                 df[f"estimate: {lab}"] = row
         df["statistic"] = self.statistic
+        if self.tfce is not None:
+            df["tfce"] = self.tfce
         df["p"] = self.p
+        if self.p_permutation is not None:
+            df["p_permutation"] = self.p_permutation
         df["p_corrected"] = self.p_corrected
         df["significant"] = self.significant
+        if self.cluster is not None:
+            df["cluster"] = pd.array(np.where(self.cluster > 0, self.cluster, 0), dtype="Int64")
+            df.loc[self.cluster == 0, "cluster"] = pd.NA
         df["effect_size"] = self.effect_size
         df["effect_size_corrected"] = self.effect_size_corrected
         return df
+
+    def clusters_frame(self) -> pd.DataFrame:
+        """The clusters (or regions of significant points) as a table: ``clusters.csv``."""
+        return clusters_frame(self.clusters, frequencies=self.axes.frequencies is not None)
 
     def to_xarray(self):
         """An ``xarray.Dataset`` with dims channel, (frequency,) time (needs xarray)."""
@@ -209,7 +244,9 @@ class TestResult(_Frozen):
         if self.axes.frequencies is not None:
             coords["frequency"] = list(self.axes.frequencies)
         data = {f: (dims, self.map(f)) for f in ("statistic", "p", "p_corrected", "significant",
-                                                 "effect_size", "effect_size_corrected")}
+                                                 "effect_size", "effect_size_corrected",
+                                                 "p_permutation", "tfce", "cluster")
+                if getattr(self, f) is not None}
         data["estimate"] = (("contrast",) + dims, self.map("estimate"))
         coords["contrast"] = list(self.estimate_labels)
         return xr.Dataset(data, coords=coords, attrs={"test": self.name, "kind": self.kind,
@@ -240,6 +277,7 @@ class TestResult(_Frozen):
                                 "n_points": int(r["size"])} for ch, r in spans.iterrows()]
         else:
             out["channels"] = []
+        out["clusters"] = [c.model_dump() for c in self.clusters if c.significant]
         return out
 
     def summary(self) -> dict:
@@ -253,8 +291,9 @@ class TestResult(_Frozen):
                 "group_contrast": dict(zip(self.group_contrast_labels, self.group_contrast.tolist())),
                 "effect_size_name": self.effect_size_name,
                 "effect_size_corrected_name": self.effect_size_corrected_name,
+                "resampling": self.resampling.model_dump() if self.resampling else None,
                 "findings": self.findings(), "notes": list(self.notes),
-                "cautions": [CAUTION, CLINICAL_CAUTION]}
+                "cautions": [CAUTION] + ([CLUSTER_CAUTION] if self.resampling else []) + [CLINICAL_CAUTION]}
 
     def __str__(self) -> str:
         f = self.findings()
@@ -273,12 +312,32 @@ class TestResult(_Frozen):
                          f"{1000 * ch['last_time']:5.0f} ms ({ch['n_points']} points)")
         if len(f["channels"]) > 40:
             lines.append(f"    ... and {len(f['channels']) - 40} more channels")
+        if self.resampling is not None:
+            r = self.resampling
+            lines.append(f"  {r.scheme}: {r.n_resamplings} resamplings"
+                         f"{' (all possible)' if r.exhaustive else f', seed {r.seed}'}"
+                         + (f", cluster-forming threshold {r.cluster_threshold:.3f}"
+                            if r.cluster_threshold is not None else ""))
+            sig = [c for c in self.clusters if c.significant]
+            what = "clusters" if self.correction.method == "cluster" else "regions of significant points"
+            lines.append(f"  {len(sig)} significant {what}" + (":" if sig else ""))
+            for c in sig[:20]:
+                span = f"{1000 * c.first_time:.0f} to {1000 * c.last_time:.0f} ms"
+                if c.lowest_frequency is not None:
+                    span += f", {c.lowest_frequency:g}-{c.highest_frequency:g} Hz"
+                lines.append(f"    #{c.id} {c.sign}, {span}, {c.extent} points, p = {c.p:.4g}; peak "
+                             f"{c.peak_channel} {1000 * c.peak_time:.0f} ms ({self.kind} = "
+                             f"{c.peak_statistic:.2f}); channels {' '.join(c.channels)}")
+            if len(sig) > 20:
+                lines.append(f"    ... and {len(sig) - 20} more")
         if f["n_nonfinite"]:
             lines.append(f"  warning: the statistic is not finite at {f['n_nonfinite']} points "
                          "(zero variance or missing data); they are left out of the correction")
         for n in self.notes:
             lines.append(f"  note: {n}")
         lines.append(f"  caution: {CAUTION}")
+        if self.resampling is not None:
+            lines.append(f"  caution: {CLUSTER_CAUTION}")
         return "\n".join(lines)
 
     # --- saving ---------------------------------------------------------------------------
@@ -286,11 +345,14 @@ class TestResult(_Frozen):
         """Write ``result.npz``, ``points.csv`` and ``summary.json`` into ``folder``."""
         folder = Path(folder)
         folder.mkdir(parents=True, exist_ok=True)
-        meta = self.model_dump(mode="json", exclude=set(_ARRAYS))
-        arrays = {k: np.asarray(getattr(self, k)) for k in _ARRAYS}
+        meta = self.model_dump(mode="json", exclude=set(_ARRAYS) | set(_OPTIONAL_ARRAYS))
+        arrays = {k: np.asarray(getattr(self, k)) for k in _ARRAYS + _OPTIONAL_ARRAYS
+                  if getattr(self, k) is not None}
         with open(folder / "result.npz", "wb") as fh:
             np.savez(fh, meta=np.array(json.dumps(meta)), **arrays)
         self.to_frame().to_csv(folder / "points.csv", index=False, float_format="%.10g")
+        if self.resampling is not None:
+            self.clusters_frame().to_csv(folder / "clusters.csv", index=False, float_format="%.10g")
         (folder / "summary.json").write_text(json.dumps(self.summary(), indent=2, default=_plain) + "\n")
 
 
@@ -311,6 +373,7 @@ def load_result(path: str | Path) -> TestResult:
         with np.load(path, allow_pickle=False) as z:
             meta = json.loads(str(z["meta"]))
             arrays = {k: z[k] for k in _ARRAYS}
+            arrays.update({k: z[k] for k in _OPTIONAL_ARRAYS if k in z.files})
     except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile) as e:
         raise GlmeegError(f"{path}: not a glmeeg result file ({e or type(e).__name__})") from None
     if not isinstance(meta, dict):

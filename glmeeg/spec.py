@@ -19,7 +19,7 @@ import tomllib
 from pathlib import Path
 from typing import Annotated, Literal, Union
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from .errors import DesignFileError
 
@@ -27,7 +27,11 @@ __all__ = ["DataSpec", "SubjectModelSpec", "GroupModelSpec", "TestSpec", "Design
            "Contrast", "load_design", "parse_design"]
 
 Alternative = Literal["two-sided", "greater", "less"]
-CorrectionName = Literal["none", "bonferroni", "holm", "fdr"]
+CorrectionName = Literal["none", "bonferroni", "holm", "fdr", "max", "cluster", "tfce"]
+# Keys that belong to one family of corrections only.
+_PERMUTATION_KEYS = ("permutations", "seed", "resampling")
+_CLUSTER_KEYS = ("cluster_threshold", "cluster_statistic")
+_TFCE_KEYS = ("tfce_extent_exponent", "tfce_height_exponent")
 
 # A contrast is a column name or patsy constraint string ("a - b"), or a numeric vector; a list
 # of several of these is a joint (F) contrast.
@@ -51,6 +55,8 @@ class DataSpec(_Strict):
     time_start: float = Field(strict=True, allow_inf_nan=False, description="time of the first sample, seconds")
     sampling_rate: float = Field(gt=0, strict=True, allow_inf_nan=False, description="samples per second (Hz)")
     frequencies: list[float] | None = Field(None, description="frequencies (Hz) of 4-D epoch arrays")
+    neighbours: str | None = Field(None, description="neighbour table (CSV: channel, neighbour); default: "
+                                   "from sensor positions")
 
     @field_validator("epochs")
     @classmethod
@@ -112,6 +118,37 @@ class TestSpec(_Strict):
     correction: CorrectionName = "fdr"
     alpha: float = Field(0.05, gt=0, lt=1)
     alternative: Alternative = "two-sided"
+    permutations: int | None = Field(None, ge=1, le=10_000_000,
+                                     description="resamplings for max / cluster / tfce (default 5000)")
+    seed: int | None = Field(None, ge=0, le=2**63 - 1, description="seed of the resamplings")
+    resampling: Literal["auto", "sign-flip", "permute"] | None = Field(
+        None, description="sign-flip or permute subjects; default: chosen from the design")
+    cluster_threshold: float | None = Field(None, gt=0, allow_inf_nan=False,
+                                            description="cluster-forming threshold on |t| or F")
+    cluster_statistic: Literal["mass", "extent"] | None = None
+    tfce_extent_exponent: float | None = Field(None, gt=0, le=10, allow_inf_nan=False)
+    tfce_height_exponent: float | None = Field(None, gt=0, le=10, allow_inf_nan=False)
+
+    @model_validator(mode="after")
+    def _keys_match_correction(self) -> "TestSpec":
+        families = {"permutation": (_PERMUTATION_KEYS, ("max", "cluster", "tfce")),
+                    "cluster": (_CLUSTER_KEYS, ("cluster",)), "tfce": (_TFCE_KEYS, ("tfce",))}
+        for keys, allowed in families.values():
+            for key in keys:
+                if getattr(self, key) is not None and self.correction not in allowed:
+                    raise ValueError(f"{key} applies to correction = {' | '.join(allowed)}, not "
+                                     f"{self.correction!r}")
+        return self
+
+    def correction_settings(self):
+        """The correction's settings object (:mod:`glmeeg.inference.corrections`)."""
+        from .inference.corrections import correction_from_name
+
+        given = {"permutations": self.permutations, "seed": self.seed, "resampling": self.resampling,
+                 "threshold": self.cluster_threshold, "statistic": self.cluster_statistic,
+                 "extent_exponent": self.tfce_extent_exponent,
+                 "height_exponent": self.tfce_height_exponent}
+        return correction_from_name(self.correction, **{k: v for k, v in given.items() if v is not None})
 
     @field_validator("name")
     @classmethod

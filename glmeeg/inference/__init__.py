@@ -1,7 +1,7 @@
-"""Inference over many points: multiple-comparison corrections (permutation methods slot in here)."""
+"""Inference over many points: parametric and permutation-based multiple-comparison corrections."""
 
-from .corrections import (Bonferroni, Correction, FalseDiscoveryRate, Holm, NoCorrection,
-                          adjust_p, correction_from_name)
+from .corrections import (TFCE, Bonferroni, ClusterMass, Correction, FalseDiscoveryRate, Holm,
+                          MaxStatistic, NoCorrection, adjust_p, correction_from_name)
 
-__all__ = ["Bonferroni", "Correction", "FalseDiscoveryRate", "Holm", "NoCorrection", "adjust_p",
-           "correction_from_name"]
+__all__ = ["Bonferroni", "ClusterMass", "Correction", "FalseDiscoveryRate", "Holm", "MaxStatistic",
+           "NoCorrection", "TFCE", "adjust_p", "correction_from_name"]

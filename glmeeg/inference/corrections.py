@@ -2,8 +2,9 @@
 
 Each correction is a small frozen settings object; a test takes exactly one through its
 ``correction`` argument, and the design file's ``correction = "<name>"`` maps onto it. The
-parametric rules here adjust p-values; the permutation-based rules (max statistic, cluster
-mass, TFCE) are further members of the same :data:`Correction` union.
+parametric rules adjust p-values (:func:`adjust_p`); the permutation-based rules (max
+statistic, cluster mass, TFCE) carry their settings here and are computed by
+:mod:`glmeeg.inference.permutation`.
 
 Points whose p-value is not finite (a statistic that could not be computed, e.g. zero variance)
 are left out of the family and keep a NaN corrected p; the run reports how many there are.
@@ -16,8 +17,9 @@ from typing import Annotated, Literal, Union
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field
 
-__all__ = ["NoCorrection", "Bonferroni", "Holm", "FalseDiscoveryRate", "Correction",
-           "correction_from_name", "adjust_p"]
+__all__ = ["NoCorrection", "Bonferroni", "Holm", "FalseDiscoveryRate", "MaxStatistic",
+           "ClusterMass", "TFCE", "Correction", "PERMUTATION_METHODS", "correction_from_name",
+           "adjust_p"]
 
 
 class _Settings(BaseModel):
@@ -81,10 +83,101 @@ class FalseDiscoveryRate(_Settings):
         return "Benjamini-Hochberg false discovery rate over all points"
 
 
-Correction = Annotated[Union[NoCorrection, Bonferroni, Holm, FalseDiscoveryRate],
-                       Field(discriminator="method")]
+DEFAULT_PERMUTATIONS = 5000
+DEFAULT_SEED = 20090101
+Resampling = Literal["auto", "sign-flip", "permute"]
 
-_BY_NAME = {"none": NoCorrection, "bonferroni": Bonferroni, "holm": Holm, "fdr": FalseDiscoveryRate}
+
+class _Permutation(_Settings):
+    """Settings shared by the permutation-based corrections."""
+
+    permutations: int = Field(DEFAULT_PERMUTATIONS, ge=1, le=10_000_000,
+                              description="random resamplings; all of them when the full set is no larger")
+    seed: int = Field(DEFAULT_SEED, ge=0, description="seed of this test's random resamplings")
+    resampling: Resampling = Field("auto", description="sign-flip, permute, or chosen from the design")
+
+    def _resampling_text(self) -> str:
+        return (f"{self.permutations} resamplings (seed {self.seed}, "
+                f"{'scheme chosen from the design' if self.resampling == 'auto' else self.resampling})")
+
+
+class MaxStatistic(_Permutation):
+    """Family-wise error control by the permutation distribution of the maximum statistic.
+
+    References
+    ----------
+    .. [1] Nichols, T. E., & Holmes, A. P. (2002). Nonparametric permutation tests for functional
+       neuroimaging: a primer with examples. Human Brain Mapping, 15(1), 1-25.
+    """
+
+    method: Literal["max"] = "max"
+
+    def describe(self) -> str:
+        return f"max-statistic permutation correction, {self._resampling_text()}"
+
+
+class ClusterMass(_Permutation):
+    """Cluster-based permutation test: clusters of neighbouring points beyond a threshold.
+
+    Parameters
+    ----------
+    threshold : float, optional
+        Cluster-forming threshold on the statistic (|t| or F). Default: the value whose
+        parametric p is 0.05 (two-sided for two-sided t tests).
+    statistic : {"mass", "extent"}, default "mass"
+        Cluster statistic: sum of the statistic over the cluster's points, or their number.
+
+    References
+    ----------
+    .. [1] Maris, E., & Oostenveld, R. (2007). Nonparametric statistical testing of EEG- and
+       MEG-data. Journal of Neuroscience Methods, 164(1), 177-190.
+    .. [2] Sassenhagen, J., & Draschkow, D. (2019). Cluster-based permutation tests of MEG/EEG
+       data do not establish significance of effect latency or location. Psychophysiology,
+       56(6), e13335.
+    """
+
+    method: Literal["cluster"] = "cluster"
+    threshold: float | None = Field(None, gt=0, allow_inf_nan=False)
+    statistic: Literal["mass", "extent"] = "mass"
+
+    def describe(self) -> str:
+        thr = "parametric p < 0.05" if self.threshold is None else f"{self.threshold:g}"
+        return (f"cluster-{self.statistic} permutation test (cluster-forming threshold {thr}), "
+                f"{self._resampling_text()}")
+
+
+class TFCE(_Permutation):
+    """Threshold-free cluster enhancement with a max-TFCE permutation correction.
+
+    Parameters
+    ----------
+    extent_exponent : float, default 0.5
+        E in the integral of extent^E * height^H over thresholds.
+    height_exponent : float, default 2
+        H in the same integral.
+
+    References
+    ----------
+    .. [1] Smith, S. M., & Nichols, T. E. (2009). Threshold-free cluster enhancement: addressing
+       problems of smoothing, threshold dependence and localisation in cluster inference.
+       NeuroImage, 44(1), 83-98.
+    """
+
+    method: Literal["tfce"] = "tfce"
+    extent_exponent: float = Field(0.5, gt=0, le=10, allow_inf_nan=False)
+    height_exponent: float = Field(2.0, gt=0, le=10, allow_inf_nan=False)
+
+    def describe(self) -> str:
+        return (f"TFCE (E = {self.extent_exponent:g}, H = {self.height_exponent:g}) with max-TFCE "
+                f"permutation correction, {self._resampling_text()}")
+
+
+Correction = Annotated[Union[NoCorrection, Bonferroni, Holm, FalseDiscoveryRate, MaxStatistic,
+                             ClusterMass, TFCE], Field(discriminator="method")]
+PERMUTATION_METHODS = ("max", "cluster", "tfce")
+
+_BY_NAME = {"none": NoCorrection, "bonferroni": Bonferroni, "holm": Holm, "fdr": FalseDiscoveryRate,
+            "max": MaxStatistic, "cluster": ClusterMass, "tfce": TFCE}
 
 
 def correction_from_name(name: str, **settings) -> Correction:

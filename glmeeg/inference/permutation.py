@@ -1,0 +1,398 @@
+"""Permutation inference for group-level tests: sign-flipping and Freedman-Lane permutation.
+
+The group model ``Y = G B + E`` (subjects x points) is split by the tested contrast ``L`` into the
+tested part and a nuisance part ``Z = G N`` (``N`` a basis of the null space of ``L``). The data
+are reduced to the nuisance model's residuals ``R = (I - H_Z) Y`` and, for every resampling ``T``
+(a permutation or a diagonal of signs), the statistic is computed from the full model fitted to
+``T R`` (Freedman & Lane, 1983). Because ``H_Z Y`` lies in the nuisance space, adding it back
+would change neither the contrast estimate nor the residuals, so it is left out.
+
+Which resampling is valid depends on what is exchangeable under the null hypothesis (Winkler et
+al., 2014):
+
+``sign-flip``
+    Independent and symmetric errors: each subject's residual may change sign. Used when the
+    test involves the mean (the constant is not in the nuisance space): one-sample and paired
+    questions, within-subject contrasts, the intercept of a model with covariates.
+``permute``
+    Exchangeable errors: subjects' residuals may swap places. Used when the constant is in the
+    nuisance space: group differences, covariate slopes.
+
+When the full set of resamplings is no larger than the number asked for, all of them are used
+(the identity among them) and p = b / N; otherwise ``permutations`` are drawn at random and the
+observed data count once: p = (b + 1) / (m + 1) (Phipson & Smyth, 2010). Random resamplings come
+from one seed per test, expanded with :class:`numpy.random.SeedSequence` into one child stream per
+block of :data:`BLOCK` resamplings, so any resampling can be regenerated alone and results do not
+depend on batch size or on how the work is split. Statistics are computed by a kernel that sums
+every value in a fixed order, so they are bitwise identical for any batch size.
+
+References
+----------
+.. [1] Freedman, D., & Lane, D. (1983). A nonstochastic interpretation of reported significance
+   levels. Journal of Business & Economic Statistics, 1(4), 292-298.
+.. [2] Winkler, A. M., Ridgway, G. R., Webster, M. A., Smith, S. M., & Nichols, T. E. (2014).
+   Permutation inference for the general linear model. NeuroImage, 92, 381-397.
+.. [3] Phipson, B., & Smyth, G. K. (2010). Permutation p-values should never be zero.
+   Statistical Applications in Genetics and Molecular Biology, 9(1), 39.
+.. [4] Nichols, T. E., & Holmes, A. P. (2002). Nonparametric permutation tests for functional
+   neuroimaging: a primer with examples. Human Brain Mapping, 15(1), 1-25.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+from dataclasses import dataclass, field
+from typing import Literal
+
+import numpy as np
+import scipy.linalg
+import scipy.stats
+
+from ..errors import ModelError
+from ..subject_level import _conditioning
+from .corrections import TFCE, ClusterMass, MaxStatistic
+
+__all__ = ["BLOCK", "PermutationResult", "choose_resampling", "resamplings", "permutation_test",
+           "cluster_forming_threshold"]
+
+# Resamplings per child seed stream.
+BLOCK = 100
+# Relative tolerance when comparing a resampled statistic with the observed one, so that the
+# identity (and exact ties) count as "at least as extreme" despite rounding.
+_TIE = 1e-12
+_KERNEL_BLOCK = 512
+
+Scheme = Literal["sign-flip", "permute"]
+
+
+@dataclass(frozen=True)
+class PermutationResult:
+    """Outcome of a permutation-based correction at every point.
+
+    Attributes
+    ----------
+    scheme : {"sign-flip", "permute"}
+    n_resamplings : int
+        Resamplings the null distribution holds (all of them when ``exhaustive``).
+    exhaustive : bool
+    seed : int
+    p_uncorrected : numpy.ndarray
+        Permutation p-value of every point on its own.
+    p_corrected : numpy.ndarray
+        Family-wise corrected p of every point (its cluster's p for cluster tests; 1 outside
+        clusters).
+    null_distribution : numpy.ndarray
+        Maximum statistic (max |t|, max F, max cluster statistic or max TFCE, over points and the
+        tested tails) of every resampling.
+    enhanced : numpy.ndarray or None
+        TFCE values, signed like the statistic (TFCE only).
+    cluster_labels : numpy.ndarray or None
+        Cluster id of every point, 0 outside clusters (cluster test only).
+    clusters : list of dict
+        One per cluster: ``id``, ``sign``, ``mass``, ``extent``, ``p`` (cluster test only).
+    threshold : float or None
+        Cluster-forming threshold used (cluster test only).
+    """
+
+    scheme: Scheme
+    n_resamplings: int
+    exhaustive: bool
+    seed: int
+    p_uncorrected: np.ndarray
+    p_corrected: np.ndarray
+    null_distribution: np.ndarray
+    enhanced: np.ndarray | None = None
+    cluster_labels: np.ndarray | None = None
+    clusters: list = field(default_factory=list)
+    threshold: float | None = None
+
+
+def _in_span(v: np.ndarray, A: np.ndarray) -> bool:
+    if A.shape[1] == 0:
+        return False
+    coef, *_ = np.linalg.lstsq(A, v, rcond=None)
+    return float(np.linalg.norm(v - A @ coef)) <= 1e-9 * float(np.linalg.norm(v))
+
+
+def _nuisance(design: np.ndarray, contrast: np.ndarray) -> np.ndarray:
+    return design @ scipy.linalg.null_space(contrast)
+
+
+def choose_resampling(design: np.ndarray, contrast: np.ndarray, *, requested: str = "auto") -> Scheme:
+    """The resampling scheme that suits a group design and contrast.
+
+    Sign-flipping when the constant is not in the nuisance space (the test involves a mean),
+    permutation of subjects when it is. ``requested`` other than ``"auto"`` is checked against
+    that rule.
+
+    Raises
+    ------
+    ModelError
+        The requested scheme cannot test this contrast.
+    """
+    Z = _nuisance(design, contrast)
+    ones = np.ones(design.shape[0])
+    scheme: Scheme = "permute" if _in_span(ones, Z) else "sign-flip"
+    if requested not in ("auto", scheme):
+        if requested == "sign-flip":
+            raise ModelError("resampling 'sign-flip' does not suit this contrast: it compares subjects "
+                             "within a model that keeps a common mean, so subjects must be permuted "
+                             "(use 'permute' or 'auto')")
+        raise ModelError("resampling 'permute' cannot test this contrast: it involves the mean, which "
+                         "permuting subjects leaves unchanged; use 'sign-flip' or 'auto'")
+    return scheme
+
+
+def resamplings(scheme: Scheme, n: int, *, permutations: int, seed: int) -> tuple[np.ndarray, bool]:
+    """All resamplings of a test, one row each.
+
+    Returns
+    -------
+    rows : numpy.ndarray
+        ``(N, n)``: signs (int8, +1/-1) for sign-flipping, subject orders (int32) for
+        permutation. When exhaustive, row 0 is the identity.
+    exhaustive : bool
+        True when every possible resampling is listed (``N`` = 2^n or n!).
+    """
+    total = 2 ** n if scheme == "sign-flip" else math.factorial(n)
+    if total <= permutations:
+        if scheme == "sign-flip":
+            k = np.arange(total, dtype=np.int64)[:, None]
+            bits = (k >> np.arange(n, dtype=np.int64)[None, :]) & 1
+            return (1 - 2 * bits).astype(np.int8), True
+        return np.array(list(itertools.permutations(range(n))), dtype=np.int32), True
+    children = np.random.SeedSequence(seed).spawn((permutations + BLOCK - 1) // BLOCK)
+    blocks = []
+    for j, child in enumerate(children):
+        rng = np.random.default_rng(child)
+        count = min(BLOCK, permutations - j * BLOCK)
+        if scheme == "sign-flip":
+            blocks.append((1 - 2 * rng.integers(0, 2, size=(count, n))).astype(np.int8))
+        else:
+            blocks.append(np.argsort(rng.random((count, n)), axis=1, kind="stable").astype(np.int32))
+    return np.concatenate(blocks), False
+
+
+def cluster_forming_threshold(kind: str, df: tuple[float, float], alternative: str) -> float:
+    """The statistic whose parametric p is 0.05 (two-sided t: |t| at p = 0.025 per tail)."""
+    if kind == "F":
+        return float(scipy.stats.f.isf(0.05, df[0], df[1]))
+    tail = 0.025 if alternative == "two-sided" else 0.05
+    return float(scipy.stats.t.isf(tail, df[1]))
+
+
+class _Engine:
+    """Statistic maps of resampled data, from one reduction of the data per test."""
+
+    def __init__(self, Y: np.ndarray, G: np.ndarray, L: np.ndarray, scheme: Scheme):
+        n, k, P = Y.shape
+        self.n, self.k, self.P, self.m = n, k, P, L.shape[0]
+        self.scheme = scheme
+        M = _conditioning(G)
+        Q, R = np.linalg.qr(G @ M)
+        self.qt = np.ascontiguousarray(Q.T)                       # (q, n)
+        self.K = L @ M @ scipy.linalg.solve_triangular(R, np.eye(R.shape[0]))   # (m, q)
+        self.KKt = self.K @ self.K.T
+        self.dfe = n - G.shape[1]
+        Z = _nuisance(G, L)
+        Y2 = Y.reshape(n, k * P)
+        if Z.shape[1]:
+            Qz, _ = np.linalg.qr(Z)
+            Y2 = Y2 - Qz @ (Qz.T @ Y2)
+        self.R = np.ascontiguousarray(Y2, dtype=np.float64)      # (n, k*P)
+        Rk = self.R.reshape(n, k, P)
+        if k == 1:
+            self.rz2 = np.einsum("np,np->p", Rk[:, 0], Rk[:, 0])
+        else:
+            self.C0 = np.einsum("nkp,nlp->pkl", Rk, Rk)
+
+    def statistics(self, rows: np.ndarray) -> np.ndarray:
+        """``(B, P)`` t or F maps for a batch of resamplings (sign rows or subject orders)."""
+        from ..kernels import weighted_row_sums
+
+        B = rows.shape[0]
+        if self.scheme == "sign-flip":
+            W = self.qt[None, :, :] * rows[:, None, :].astype(np.float64)
+        else:
+            W = np.transpose(self.qt[:, rows], (1, 0, 2))
+        q = self.qt.shape[0]
+        U = weighted_row_sums(np.ascontiguousarray(W.reshape(B * q, self.n)), self.R, _KERNEL_BLOCK)
+        U = U.reshape(B, q, self.k, self.P)
+        A = np.einsum("mq,bqkp->bmkp", self.K, U)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            if self.k == 1:
+                ss = self.rz2[None, :] - np.einsum("bqp,bqp->bp", U[:, :, 0], U[:, :, 0])
+                s2 = ss / self.dfe
+                if self.m == 1:
+                    return A[:, 0, 0] / np.sqrt(s2 * self.KKt[0, 0])
+                inv = np.linalg.inv(self.KKt)
+                return np.einsum("bip,ij,bjp->bp", A[:, :, 0], inv, A[:, :, 0]) / (self.m * s2)
+            S = (self.C0[None] - np.einsum("bqkp,bqlp->bpkl", U, U)) / self.dfe
+            a = np.transpose(A[:, 0], (0, 2, 1))                   # (B, P, k)
+            ok = np.isfinite(S).all(axis=(2, 3)) & (np.linalg.det(S) > 0)
+            sol = np.full_like(a, np.nan)
+            sol[ok] = np.linalg.solve(S[ok], a[ok][..., None])[..., 0]
+            t2 = np.einsum("bpk,bpk->bp", a, sol) / self.KKt[0, 0]
+            return (self.dfe - self.k + 1) / (self.k * self.dfe) * t2
+
+
+def _oriented(stat: np.ndarray, kind: str, alternative: str) -> np.ndarray:
+    """Statistic turned so that larger means more extreme for the tested tail(s)."""
+    if kind == "F" or alternative == "greater":
+        return stat
+    if alternative == "less":
+        return -stat
+    return np.abs(stat)
+
+
+def _at_least(null: np.ndarray, observed: np.ndarray) -> np.ndarray:
+    """How many null values are at least each observed value (with a relative tie tolerance)."""
+    s = np.sort(null)
+    edge = observed - _TIE * np.abs(observed)
+    return s.size - np.searchsorted(s, edge, side="left")
+
+
+def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, *,
+                     kind: Literal["t", "F"], df: tuple[float, float],
+                     alternative: str = "two-sided",
+                     correction: MaxStatistic | ClusterMass | TFCE,
+                     graph: tuple[np.ndarray, np.ndarray] | None = None,
+                     memory_limit: int = 512 * 2**20) -> PermutationResult:
+    """Family-wise corrected p-values at every point by sign-flipping or permutation.
+
+    Parameters
+    ----------
+    estimates : numpy.ndarray
+        ``(n_subjects, n_points)`` or ``(n_subjects, k, n_points)`` subject contrast estimates.
+    design : numpy.ndarray
+        ``(n_subjects, q)`` group design.
+    contrast : numpy.ndarray
+        ``(m, q)`` group contrast.
+    kind : {"t", "F"}
+        The statistic (as returned by :func:`glmeeg.group_test`).
+    df : tuple of float
+        Its degrees of freedom (for the default cluster-forming threshold).
+    alternative : {"two-sided", "greater", "less"}
+    correction : MaxStatistic, ClusterMass or TFCE
+        The correction and its settings (resamplings, seed, scheme, threshold, exponents).
+    graph : tuple of numpy.ndarray, optional
+        ``(indptr, indices)`` of the points' neighbour graph (CSR); required for cluster and
+        TFCE corrections.
+    memory_limit : int, default 512 MiB
+        Bound on the memory of one batch of resampled maps.
+
+    Returns
+    -------
+    PermutationResult
+
+    Raises
+    ------
+    ModelError
+        A requested scheme that cannot test the contrast, or a missing graph.
+
+    Notes
+    -----
+    Two-sided t tests use the maximum of |t| (max), of positive and negative cluster
+    statistics (cluster) or of positive and negative TFCE (tfce) in each resampling, so one
+    null distribution controls the error over both tails. F tests are upper-tailed.
+    """
+    Y = np.asarray(estimates, dtype=np.float64)
+    if Y.ndim == 2:
+        Y = Y[:, None, :]
+    G = np.asarray(design, dtype=np.float64)
+    L = np.atleast_2d(np.asarray(contrast, dtype=np.float64))
+    n, k, P = Y.shape
+    if correction.method in ("cluster", "tfce") and graph is None:
+        raise ModelError(f"correction '{correction.method}' needs the neighbour graph of the points")
+    scheme = choose_resampling(G, L, requested=correction.resampling)
+    rows, exhaustive = resamplings(scheme, n, permutations=correction.permutations, seed=correction.seed)
+    engine = _Engine(Y, G, L, scheme)
+    identity = (np.ones((1, n), dtype=np.int8) if scheme == "sign-flip"
+                else np.arange(n, dtype=np.int32)[None, :])
+    observed = engine.statistics(identity)[0]
+    obs_or = _oriented(observed, kind, alternative)
+    finite = np.isfinite(obs_or)
+    obs_or_f = np.where(finite, obs_or, -np.inf)
+
+    threshold = None
+    if correction.method == "cluster":
+        threshold = (correction.threshold if correction.threshold is not None
+                     else cluster_forming_threshold(kind, df, alternative))
+    two_tails = kind == "t" and alternative == "two-sided"
+    sign = -1.0 if (kind == "t" and alternative == "less") else 1.0
+    indptr, indices = graph if graph is not None else (None, None)
+
+    def batch_max(maps: np.ndarray) -> np.ndarray:
+        maps = np.where(np.isfinite(maps), maps, 0.0)
+        if correction.method == "max":
+            return np.max(_oriented(maps, kind, alternative), axis=1)
+        directed = np.ascontiguousarray(sign * maps)
+        if correction.method == "cluster":
+            from .clusters import max_cluster_statistic
+            both = max_cluster_statistic(directed, indptr, indices, threshold,
+                                         statistic=correction.statistic,
+                                         tails="both" if two_tails else "positive")
+        else:
+            from .tfce import max_tfce
+            both = max_tfce(directed, indptr, indices, extent_exponent=correction.extent_exponent,
+                            height_exponent=correction.height_exponent)
+        return both.max(axis=1) if two_tails else both[:, 0]
+
+    per_map = P * 8 * (engine.qt.shape[0] * k + 6)
+    batch = int(max(1, min(rows.shape[0], memory_limit // max(per_map, 1))))
+    null = np.empty(rows.shape[0])
+    counts = np.zeros(P, dtype=np.int64)
+    edge = obs_or_f - _TIE * np.abs(np.where(finite, obs_or, 0.0))
+    for start in range(0, rows.shape[0], batch):
+        maps = engine.statistics(rows[start:start + batch])
+        counts += (np.where(np.isfinite(maps), _oriented(maps, kind, alternative), -np.inf) >= edge).sum(axis=0)
+        null[start:start + batch] = batch_max(maps)
+
+    N = rows.shape[0]
+    add = 0 if exhaustive else 1
+
+    def p_of(count):
+        return (count + add) / (N + add)
+
+    p_unc = np.where(finite, p_of(counts), np.nan)
+    result = dict(scheme=scheme, n_resamplings=N, exhaustive=exhaustive, seed=correction.seed,
+                  p_uncorrected=p_unc, null_distribution=null, threshold=threshold)
+    obs_clean = np.where(finite, observed, 0.0)
+    if correction.method == "max":
+        p_corr = np.where(finite, p_of(_at_least(null, obs_or_f)), np.nan)
+        return PermutationResult(p_corrected=np.minimum(p_corr, 1.0), **result)
+    directed_obs = np.ascontiguousarray(sign * obs_clean)
+    if correction.method == "tfce":
+        from .tfce import tfce
+        enhanced = tfce(directed_obs, indptr, indices, extent_exponent=correction.extent_exponent,
+                        height_exponent=correction.height_exponent)
+        score = enhanced if not two_tails else np.abs(enhanced)
+        score = np.where(score > 0, score, 0.0)
+        p_corr = np.where(score > 0, p_of(_at_least(null, score)), 1.0)
+        p_corr = np.where(finite, p_corr, np.nan)
+        return PermutationResult(p_corrected=p_corr, enhanced=sign * enhanced, **result)
+    from .clusters import cluster_table, label_clusters
+    labels = np.zeros(P, dtype=np.int32)
+    clusters = []
+    for tail in ((1.0, -1.0) if two_tails else (1.0,)):
+        vals = np.ascontiguousarray(tail * directed_obs)
+        lab = label_clusters(vals, indptr, indices, threshold)
+        if lab.max() == 0:
+            continue
+        mass, extent = cluster_table(vals, lab)
+        stat = mass if correction.statistic == "mass" else extent.astype(float)
+        p = p_of(_at_least(null, stat))
+        for cid in range(1, lab.max() + 1):
+            clusters.append({"points": np.flatnonzero(lab == cid), "sign": tail * sign,
+                             "mass": float(tail * sign * mass[cid - 1]), "extent": int(extent[cid - 1]),
+                             "p": float(p[cid - 1])})
+    # Number clusters by p, then by size of the statistic.
+    clusters.sort(key=lambda c: (c["p"], -abs(c["mass"]), int(c["points"][0])))
+    p_corr = np.ones(P)
+    for i, c in enumerate(clusters, start=1):
+        labels[c["points"]] = i
+        p_corr[c["points"]] = c["p"]
+        c["id"] = i
+    p_corr = np.where(finite, p_corr, np.nan)
+    return PermutationResult(p_corrected=p_corr, cluster_labels=labels, clusters=clusters, **result)
