@@ -191,7 +191,7 @@ def _neighbour_graph(spec: DesignSpec, study: Study, root, *, required: bool, wa
     """Sensor neighbours and the graph of points, for cluster and TFCE corrections."""
     from .errors import GlmeegError
     from .inference.graph import graph_arrays, points_graph
-    from .sensors import sensor_graph
+    from .neighbours import sensor_graph
     from .study import read_neighbour_table
 
     table, extra = None, {}
@@ -200,7 +200,8 @@ def _neighbour_graph(spec: DesignSpec, study: Study, root, *, required: bool, wa
         table = read_neighbour_table(path, label=spec.data.neighbours)
         extra["neighbours"] = path
     try:
-        sg = sensor_graph(study.sensors, neighbour_table=table, neighbour_label=spec.data.neighbours or "")
+        sg = sensor_graph(study.sensors, neighbour_table=table, neighbour_label=spec.data.neighbours or "",
+                          sensors_label=spec.data.channels)
     except GlmeegError:
         if required:
             raise

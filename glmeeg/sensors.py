@@ -1,4 +1,4 @@
-"""Sensor positions.
+"""Sensor positions: 10-10 electrode positions on a unit sphere.
 
 Positions of 10-10 system electrodes on a unit sphere, built from the system's proportional
 definition: the nasion-inion arc over the vertex and the left-right preauricular arc are divided
@@ -9,6 +9,8 @@ the row's midline electrode to the row's outer-ring electrode. This is an ideali
 head; it is good for layout, interpolation and neighbour graphs, not for source modelling.
 
 Coordinates: x towards the right ear, y towards the nasion, z towards the vertex.
+
+The neighbour graph of sensors is in :mod:`glmeeg.neighbours`.
 
 References
 ----------
@@ -24,6 +26,7 @@ from __future__ import annotations
 import re
 
 import numpy as np
+
 
 __all__ = ["standard_position", "standard_positions"]
 
@@ -70,7 +73,7 @@ def standard_position(name: str) -> np.ndarray | None:
 
     Examples
     --------
-    >>> np.round(standard_position("Cz"), 6).tolist()
+    >>> (np.round(standard_position("Cz"), 6) + 0.0).tolist()  # + 0.0 turns -0.0 into 0.0
     [0.0, 0.0, 1.0]
     """
     key = _ALIASES.get(name.upper(), name.upper())

@@ -20,7 +20,7 @@ from .axes import Axes
 from .errors import StudyError
 from .spec import DataSpec
 
-__all__ = ["Study", "read_study", "read_table"]
+__all__ = ["Study", "read_neighbour_table", "read_study", "read_table"]
 
 _SAFE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$")
 
@@ -304,3 +304,32 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
     return Study(root=root, trials=trials, subjects=subjects, sensors=sensors, axes=axes,
                  subject_ids=tuple(order), epoch_files=epoch_files, epoch_counts=counts,
                  input_files=files, warnings=tuple(warnings))
+
+
+def read_neighbour_table(path: str | Path, *, label: str) -> pd.DataFrame:
+    """Read a neighbour file: which sensors are neighbours of which.
+
+    Parameters
+    ----------
+    path : str or Path
+        A comma-separated UTF-8 table with a header row and the columns ``channel`` and
+        ``neighbour`` (channel names, read as text, so a channel called ``1`` stays ``"1"``);
+        other columns are ignored. One row per pair of neighbours, in either or both directions
+        (see :func:`glmeeg.sensors.neighbours_from_table`).
+    label : str
+        The file's name as the user wrote it (the design file's ``[data] neighbours``), for
+        messages.
+
+    Returns
+    -------
+    pandas.DataFrame
+        The table as read; the names are checked against the sensors table by
+        :func:`glmeeg.sensors.sensor_graph`.
+
+    Raises
+    ------
+    StudyError
+        The file is missing, empty, not UTF-8, not comma-separated, or lacks a column.
+    """
+    return read_table(Path(path), sep=",", label=label, required=("channel", "neighbour"),
+                      text_columns=("channel", "neighbour"))
