@@ -228,13 +228,22 @@ class _Engine:
                     return A[:, 0, 0] / np.sqrt(s2 * self.KKt[0, 0])
                 inv = np.linalg.inv(self.KKt)
                 return np.einsum("bip,ij,bjp->bp", A[:, :, 0], inv, A[:, :, 0]) / (self.m * s2)
+            scale = (self.dfe - self.k + 1) / (self.k * self.dfe)
+            if self.k == 2:  # closed-form 2 x 2 inverse: the common three-level factor
+                s11 = (self.C0[None, :, 0, 0] - np.einsum("bqp,bqp->bp", U[:, :, 0], U[:, :, 0])) / self.dfe
+                s12 = (self.C0[None, :, 0, 1] - np.einsum("bqp,bqp->bp", U[:, :, 0], U[:, :, 1])) / self.dfe
+                s22 = (self.C0[None, :, 1, 1] - np.einsum("bqp,bqp->bp", U[:, :, 1], U[:, :, 1])) / self.dfe
+                x, y = A[:, 0, 0], A[:, 0, 1]
+                det = s11 * s22 - s12 * s12
+                t2 = (s22 * x * x - 2.0 * s12 * x * y + s11 * y * y) / det
+                return np.where(det > 0, scale * t2 / self.KKt[0, 0], np.nan)
             S = (self.C0[None] - np.einsum("bqkp,bqlp->bpkl", U, U)) / self.dfe
             a = np.transpose(A[:, 0], (0, 2, 1))                   # (B, P, k)
             ok = np.isfinite(S).all(axis=(2, 3)) & (np.linalg.det(S) > 0)
             sol = np.full_like(a, np.nan)
             sol[ok] = np.linalg.solve(S[ok], a[ok][..., None])[..., 0]
             t2 = np.einsum("bpk,bpk->bp", a, sol) / self.KKt[0, 0]
-            return (self.dfe - self.k + 1) / (self.k * self.dfe) * t2
+            return scale * t2
 
 
 def _oriented(stat: np.ndarray, kind: str, alternative: str) -> np.ndarray:
