@@ -1,0 +1,361 @@
+"""Threshold-free cluster enhancement (TFCE), computed exactly from the merge history.
+
+For a map ``x`` on a neighbour graph and a point ``p`` with ``h_p = x[p] > 0``,
+
+    TFCE(p) = integral from 0 to h_p of e_p(h)^E h^H dh,
+
+where ``e_p(h)`` is the number of points in the connected component containing ``p`` of the
+superlevel set ``{i : x[i] >= h}``. Between two consecutive point values the component of
+``p`` does not change, so the integrand is ``e^E h^H`` with a constant ``e`` and each piece
+integrates in closed form to ``e^E (b^(H+1) - a^(H+1)) / (H+1)``. No threshold step is
+involved: the result is the integral itself, up to floating-point rounding.
+
+Algorithm: points are swept by decreasing value and joined with union-find (union by size,
+path halving). Each point opens a segment of the merge tree: the component it belongs to once
+it has joined, with the extent it then has, from the point's height down to the height at
+which that component next changes extent (the next point to join it or to merge it with
+another), or down to 0. The segment's integral is ``e^E (top^(H+1) - bottom^(H+1)) / (H+1)``,
+and a point's TFCE is the sum of the integrals of its segment and of the segments below it.
+The sums are taken from the bottom up, so every value is a sum of non-negative terms and keeps
+full relative accuracy even at points close to 0. (Carrying a running integral per component
+and storing members as offsets to their root, as a weighted union-find does, gives the same
+integral but subtracts large running sums near the base: relative errors of ~1e-8 at low points
+of a 1,200-point map in our tests.) Ties need nothing special: they give segments of zero
+height. Cost: one sort plus a nearly linear sweep over points and edges.
+
+The negative part is the same computation on ``max(-x, 0)``, returned negated.
+
+The compiled kernels are imported lazily by the permutation engine, so importing glmeeg does
+not load numba.
+
+References
+----------
+.. [1] Smith, S. M., & Nichols, T. E. (2009). Threshold-free cluster enhancement: addressing
+   problems of smoothing, threshold dependence and localisation in cluster inference.
+   NeuroImage, 44(1), 83-98.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit, prange
+
+from .clusters import check_finite, check_graph, check_maps
+
+__all__ = ["tfce", "max_tfce"]
+
+
+def _check_exponent(value, name: str) -> float:
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise ValueError(f"{name} must be a finite number > 0, got {value!r}") from None
+    if not (math.isfinite(v) and v > 0):
+        raise ValueError(f"{name} must be a finite number > 0, got {v}")
+    return v
+
+
+def _extent_powers(n_points: int, extent_exponent: float) -> np.ndarray:
+    """``e^E`` for every possible extent ``e = 0..n_points`` (shared by all maps)."""
+    return np.arange(n_points + 1, dtype=np.float64) ** extent_exponent
+
+
+# ---------------------------------------------------------------------------------------------
+# kernels
+
+@njit(cache=True, nogil=True)
+def _argsort_radix(x):  # pragma: no cover - compiled
+    """Stable ascending argsort of finite float64 values: least-significant-digit radix sort
+    on the IEEE bit patterns (six passes of 11 bits; a pass whose digit is the same for every
+    value is skipped). About three times faster than numba's quicksort ``np.argsort`` on maps
+    of 32,000 points, and deterministic for ties. -0.0 sorts before +0.0, harmless here."""
+    n = x.size
+    bits = x.view(np.uint64)
+    keys = np.empty(n, dtype=np.uint64)
+    keys2 = np.empty(n, dtype=np.uint64)
+    idx = np.empty(n, dtype=np.int32)
+    idx2 = np.empty(n, dtype=np.int32)
+    count = np.zeros((6, 2048), dtype=np.int64)
+    sign = np.uint64(1) << np.uint64(63)
+    mask = np.uint64(2047)
+    for i in range(n):
+        # Order-preserving map of a float's bits to an unsigned integer: flip all bits of a
+        # negative value, only the sign bit of a positive one.
+        u = bits[i]
+        if u & sign:
+            u = ~u
+        else:
+            u = u | sign
+        keys[i] = u
+        idx[i] = i
+        for d in range(6):
+            count[d, np.intp((u >> np.uint64(11 * d)) & mask)] += 1
+    for d in range(6):
+        c = count[d]
+        skip = False
+        for b in range(2048):
+            if c[b] == n:
+                skip = True
+            if c[b] != 0:
+                break
+        if skip:
+            continue
+        total = 0
+        for b in range(2048):
+            t = c[b]
+            c[b] = total
+            total += t
+        shift = np.uint64(11 * d)
+        for i in range(n):
+            u = keys[i]
+            b = np.intp((u >> shift) & mask)
+            pos = c[b]
+            c[b] = pos + 1
+            keys2[pos] = u
+            idx2[pos] = idx[i]
+        keys, keys2 = keys2, keys
+        idx, idx2 = idx2, idx
+    return idx
+
+
+@njit(cache=True, nogil=True)
+def _find(x, parent):  # pragma: no cover - compiled
+    """Root of ``x`` in the union-find forest, halving the path on the way."""
+    while parent[x] != x:
+        g = parent[parent[x]]
+        parent[x] = g
+        x = g
+    return x
+
+
+@njit(cache=True, nogil=True)
+def _sweep(x, order, start, stop, step, sign, pass_id, indptr, indices, ext_pow, a1, mark,
+           parent, size, current, top, extent, below, cum, out):  # pragma: no cover - compiled
+    """One part (positive: sign = 1, negative: sign = -1) of the TFCE of map ``x``.
+
+    ``order[start:stop:step]`` lists the points with ``sign * x > 0`` by decreasing
+    ``sign * x``. The j-th of them (j = 0, 1, ...) opens segment j of the merge tree: its
+    component, of ``extent[j]`` points from height ``x[p]`` down to the height at which segment
+    ``below[j]`` (> j) opens, or to 0 if ``below[j] == -1``. ``current[root]`` is the open
+    segment of a component. Heights are kept raised to ``a1 = H + 1``; the division by ``a1``
+    is done once per point at the end. Writes ``sign * TFCE`` to ``out`` at those points."""
+    j = 0
+    for k in range(start, stop, step):
+        p = order[k]
+        parent[p] = p
+        size[p] = 1
+        mark[p] = pass_id
+        r = p
+        for e in range(indptr[p], indptr[p + 1]):
+            q = indices[e]
+            if mark[q] != pass_id:
+                continue
+            s = _find(q, parent)
+            if s == r:
+                continue
+            # The extent of the component of s changes at this height: its segment ends here
+            # (r is p alone, or a component whose segment was ended at an earlier neighbour).
+            below[current[s]] = j
+            if size[s] > size[r]:
+                r, s = s, r
+            parent[s] = r
+            size[r] += size[s]
+        current[r] = j
+        h = sign * x[p]
+        top[j] = h * h * h if a1 == 3.0 else h ** a1  # the default H = 2 without pow
+        extent[j] = size[r]
+        below[j] = -1
+        j += 1
+    # Integrate from the bottom up (the segment below has the larger index), so that every
+    # value is a sum of non-negative pieces: full relative accuracy even at low points.
+    for i in range(j - 1, -1, -1):
+        b = below[i]
+        if b < 0:
+            cum[i] = ext_pow[extent[i]] * top[i]
+        else:
+            cum[i] = ext_pow[extent[i]] * (top[i] - top[b]) + cum[b]
+    i = 0
+    for k in range(start, stop, step):
+        out[order[k]] = sign * (cum[i] / a1)
+        i += 1
+
+
+@njit(cache=True, nogil=True)
+def _tfce_one(x, indptr, indices, ext_pow, a1, out):  # pragma: no cover - compiled
+    """Signed TFCE of one map into ``out`` (all points written)."""
+    n = x.size
+    order = _argsort_radix(x)
+    # order: negative values first (most negative first), positive values last.
+    n_neg = 0
+    while n_neg < n and x[order[n_neg]] < 0.0:
+        n_neg += 1
+    n_nonpos = n_neg
+    while n_nonpos < n and x[order[n_nonpos]] <= 0.0:
+        n_nonpos += 1
+    for k in range(n_neg, n_nonpos):
+        out[order[k]] = 0.0
+    m = max(n_neg, n - n_nonpos)
+    mark = np.zeros(n, dtype=np.int8)
+    parent = np.empty(n, dtype=np.int32)
+    size = np.empty(n, dtype=np.int32)
+    current = np.empty(n, dtype=np.int32)
+    top = np.empty(m)
+    extent = np.empty(m, dtype=np.int32)
+    below = np.empty(m, dtype=np.int32)
+    cum = np.empty(m)
+    _sweep(x, order, n - 1, n_nonpos - 1, -1, 1.0, 1, indptr, indices, ext_pow, a1, mark,
+           parent, size, current, top, extent, below, cum, out)
+    _sweep(x, order, 0, n_neg, 1, -1.0, 2, indptr, indices, ext_pow, a1, mark,
+           parent, size, current, top, extent, below, cum, out)
+
+
+@njit(cache=True, nogil=True)
+def _tfce_kernel(x, indptr, indices, ext_pow, a1):  # pragma: no cover - compiled
+    out = np.empty(x.size)
+    _tfce_one(x, indptr, indices, ext_pow, a1, out)
+    return out
+
+
+@njit(parallel=True, cache=True, nogil=True)
+def _max_tfce_kernel(maps, indptr, indices, ext_pow, a1):  # pragma: no cover - compiled
+    n_maps, n = maps.shape
+    res = np.zeros((n_maps, 2))
+    for b in prange(n_maps):
+        out = np.empty(n)
+        _tfce_one(maps[b], indptr, indices, ext_pow, a1, out)
+        hi = 0.0
+        lo = 0.0
+        for i in range(n):
+            v = out[i]
+            if v > hi:
+                hi = v
+            elif v < lo:
+                lo = v
+        res[b, 0] = hi
+        res[b, 1] = 0.0 - lo  # not -lo: no -0.0 for an empty part
+    return res
+
+
+# ---------------------------------------------------------------------------------------------
+# public functions
+
+def tfce(values, indptr, indices, *, extent_exponent: float = 0.5,
+         height_exponent: float = 2.0) -> np.ndarray:
+    """Threshold-free cluster enhancement of one map, computed exactly.
+
+    Parameters
+    ----------
+    values : array_like of float, shape (n_points,)
+        One map (e.g. a t map); must be finite.
+    indptr, indices : array_like of int
+        Neighbour graph of the points in CSR form (symmetric, no self loops).
+    extent_exponent : float, default 0.5
+        ``E``, the exponent of the cluster extent; finite and > 0.
+    height_exponent : float, default 2.0
+        ``H``, the exponent of the height; finite and > 0.
+
+    Returns
+    -------
+    ndarray of float64, shape (n_points,)
+        Signed enhanced values: a point with a positive value gets the TFCE of ``max(x, 0)``,
+        a point with a negative value minus the TFCE of ``max(-x, 0)``; points at 0 get 0.
+
+    Raises
+    ------
+    ValueError
+        If an exponent is not a finite number > 0 (the message names the parameter), the graph
+        is not a valid CSR structure, or ``values`` does not match it or is not finite.
+
+    Notes
+    -----
+    ``TFCE(p) = integral from 0 to x[p] of e_p(h)^E h^H dh``, with ``e_p(h)`` the number of
+    points of the connected component of ``{i : x[i] >= h}`` that holds ``p``. The defaults
+    ``E = 0.5`` and ``H = 2`` are those recommended by Smith & Nichols (2009). The integral is
+    evaluated in closed form between consecutive merge heights of a union-find sweep over the
+    points by decreasing value (see the module notes), not summed over threshold steps, so there
+    is no step error and no step to choose. Scaling: ``tfce(c * x) = c^(H+1) * tfce(x)``.
+
+    References
+    ----------
+    .. [1] Smith, S. M., & Nichols, T. E. (2009). Threshold-free cluster enhancement:
+       addressing problems of smoothing, threshold dependence and localisation in cluster
+       inference. NeuroImage, 44(1), 83-98.
+
+    Examples
+    --------
+    Two neighbouring points at height 3 (a plateau of n = 2) and one isolated point at -3:
+
+    >>> import numpy as np
+    >>> indptr, indices = np.array([0, 1, 2, 2]), np.array([1, 0])
+    >>> tfce(np.array([3.0, 3.0, -3.0]), indptr, indices)  # 2**0.5 * 3**3 / 3 and -3**3 / 3
+    array([12.72792206, 12.72792206, -9.        ])
+    """
+    e_exp = _check_exponent(extent_exponent, "extent_exponent")
+    h_exp = _check_exponent(height_exponent, "height_exponent")
+    indptr, indices = check_graph(indptr, indices)
+    n = indptr.size - 1
+    x = np.ascontiguousarray(values, dtype=np.float64)
+    if x.ndim != 1 or x.size != n:
+        raise ValueError(f"values must be a 1-D array of n_points = {n} values (the graph's "
+                         f"points), got shape {x.shape}")
+    check_finite(x, "values")
+    return _tfce_kernel(x, indptr, indices, _extent_powers(n, e_exp), h_exp + 1.0)
+
+
+def max_tfce(maps, indptr, indices, *, extent_exponent: float = 0.5,
+             height_exponent: float = 2.0) -> np.ndarray:
+    """Largest positive and largest negative TFCE value of each map (the null distribution of
+    a TFCE permutation test is built from these).
+
+    Parameters
+    ----------
+    maps : array_like of float, shape (n_maps, n_points)
+        Maps (e.g. the statistic maps of permuted data); must be finite. A C-contiguous
+        float64 array is used without a copy.
+    indptr, indices : array_like of int
+        Neighbour graph of the points in CSR form (symmetric, no self loops).
+    extent_exponent : float, default 0.5
+        ``E``, the exponent of the cluster extent; finite and > 0.
+    height_exponent : float, default 2.0
+        ``H``, the exponent of the height; finite and > 0.
+
+    Returns
+    -------
+    ndarray of float64, shape (n_maps, 2)
+        Column 0: ``max(tfce(map))``; column 1: ``-min(tfce(map))``, a positive number; 0 where
+        a map has no positive (negative) point.
+
+    Raises
+    ------
+    ValueError
+        As :func:`tfce`, and if ``maps`` is not 2-D with one column per point.
+
+    Notes
+    -----
+    Each map is computed by the same code as :func:`tfce` (so the maxima equal those of
+    :func:`tfce` bit for bit) and independently of the others, in parallel over maps (numba
+    ``prange``): the result of a map does not depend on the batching or the thread count.
+    Defaults ``E = 0.5``, ``H = 2`` as recommended by Smith & Nichols (2009).
+
+    References
+    ----------
+    .. [1] Smith, S. M., & Nichols, T. E. (2009). Threshold-free cluster enhancement:
+       addressing problems of smoothing, threshold dependence and localisation in cluster
+       inference. NeuroImage, 44(1), 83-98.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> indptr, indices = np.array([0, 1, 2, 2]), np.array([1, 0])
+    >>> max_tfce(np.array([[3.0, 3.0, -3.0], [0.0, 0.0, 0.0]]), indptr, indices)
+    array([[12.72792206,  9.        ],
+           [ 0.        ,  0.        ]])
+    """
+    e_exp = _check_exponent(extent_exponent, "extent_exponent")
+    h_exp = _check_exponent(height_exponent, "height_exponent")
+    indptr, indices = check_graph(indptr, indices)
+    n = indptr.size - 1
+    m = check_maps(maps, n)
+    return _max_tfce_kernel(m, indptr, indices, _extent_powers(n, e_exp), h_exp + 1.0)
