@@ -110,6 +110,41 @@ def check(design: Annotated[Path, typer.Argument(help="Design file (TOML).")]) -
 
 @app.command()
 @_reports_errors
+def neighbours(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
+               out: Annotated[Optional[Path], typer.Option("--out", "-o", help="Write the pairs as a "
+                              "neighbour table (CSV: channel, neighbour) usable as [data] neighbours.")] = None) -> None:
+    """Show which sensors count as neighbours for cluster and TFCE corrections."""
+    from .errors import GlmeegError
+    from .neighbours import sensor_graph
+    from .spec import load_design
+    from .study import read_neighbour_table, read_study
+
+    spec = load_design(design)
+    study = read_study(spec.data, root=design.parent)
+    table = None
+    if spec.data.neighbours is not None:
+        table = read_neighbour_table(design.parent / spec.data.neighbours, label=spec.data.neighbours)
+    graph = sensor_graph(study.sensors, neighbour_table=table, neighbour_label=spec.data.neighbours or "",
+                         sensors_label=spec.data.channels)
+    typer.echo(str(graph))
+    if graph.isolated:
+        typer.echo(f"warning: {len(graph.isolated)} sensor(s) have no neighbours: "
+                   f"{', '.join(graph.isolated)}", err=True)
+    if out is not None:
+        if out.exists() and out.is_dir():
+            raise GlmeegError(f"{out}: is a folder; expected a file name for the neighbour table")
+        tmp = out.with_name(f".{out.name}.partial")
+        try:
+            graph.to_frame().to_csv(tmp, index=False)
+            tmp.replace(out)
+        except OSError as e:
+            tmp.unlink(missing_ok=True)
+            raise GlmeegError(f"{out}: cannot be written ({e.strerror})") from None
+        typer.echo(f"neighbour table written to {out}")
+
+
+@app.command()
+@_reports_errors
 def show(result: Annotated[Path, typer.Argument(help="A run's output folder, or one test's folder.")]) -> None:
     """Print a readable summary of saved results."""
     from .results import CLINICAL_CAUTION, load_run

@@ -196,3 +196,22 @@ def test_failed_run_leaves_earlier_result_intact(design, tmp_path, breakage):
     assert result.stderr.startswith("error: ") and result.stderr.count("\n") == 1
     assert tree(out) == before
     assert sorted(p.name for p in tmp_path.iterdir()) == ["out", "study"]
+
+
+def test_neighbours_prints_and_exports_a_table_that_reads_back(tmp_path):
+    design = write_study(tmp_path / "s", n_channels=8)
+    result = invoke("neighbours", design, "--out", tmp_path / "pairs.csv")
+    assert result.exit_code == 0, result.output
+    # Cz and Pz are neighbours on a 10-10 cap (layout geometry); Fz and Oz are not.
+    assert "Cz" in result.stdout and "neighbour table written" in result.stdout
+    pairs = pd.read_csv(tmp_path / "pairs.csv")
+    assert list(pairs.columns) == ["channel", "neighbour"]
+    edges = set(zip(pairs["channel"], pairs["neighbour"]))
+    assert ("Cz", "Pz") in edges and ("Pz", "Cz") in edges
+    assert ("Fz", "Oz") not in edges
+    # The exported table is a valid [data] neighbours file and gives the same graph.
+    text = design.read_text().replace('sampling_rate = 100.0', 'sampling_rate = 100.0\nneighbours = "../pairs.csv"')
+    design.write_text(text)
+    again = invoke("neighbours", design)
+    assert again.exit_code == 0, again.output
+    assert again.stdout.splitlines()[1:] == result.stdout.splitlines()[1:-1]
