@@ -180,6 +180,114 @@ def demo(folder: Annotated[Path, typer.Argument(help="Folder for the demo study 
     typer.echo(demo_verdict(result))
 
 
+_POWER_OPTIONS = {"effect_size": "--effect-size", "n": "--n", "alpha": "--alpha", "power": "--power",
+                  "design": "--design", "alternative": "--alternative",
+                  "df_numerator": "--df-numerator", "groups": "--groups", "n_values": "--curve"}
+
+
+def _parse_curve(text: str) -> list[float]:
+    from .errors import GlmeegError
+
+    try:
+        values = [float(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        values = []
+    if not values:
+        raise GlmeegError(f"--curve: expected comma-separated sample sizes such as 16,24,32, got {text!r}")
+    return [int(v) if v.is_integer() else v for v in values]
+
+
+_POWER_HELP = ("Solve the missing one of effect size, n, power (or alpha) of a t or F test.\n\n"
+               "Leave out exactly one of --effect-size, --n and --power, and it is solved; --alpha "
+               "is 0.05 unless given. To solve alpha, give the other three and --solve alpha. The "
+               "numbers come from the exact noncentral t or F distribution (Cohen, 1988) and hold "
+               "for one test at --alpha: a correction over many points lowers the effective alpha.")
+
+
+@app.command("power", help=_POWER_HELP)
+@_reports_errors
+def power_command(
+        design: Annotated[str, typer.Option("--design", help="one-sample | paired | two-sample | f.")],
+        effect_size: Annotated[Optional[float], typer.Option("--effect-size", help="Cohen's d "
+                               "(one-sample, two-sample), dz (paired) or f (F test), >= 0, in the "
+                               "direction of --alternative.")] = None,
+        n: Annotated[Optional[int], typer.Option("--n", help="Participants: per group for "
+                     "two-sample (equal groups), in total otherwise.")] = None,
+        target_power: Annotated[Optional[float], typer.Option("--power", help="Power, in (0, 1).")] = None,
+        alpha: Annotated[Optional[float], typer.Option("--alpha", help="Significance level of one "
+                         "test, in (0, 1); 0.05 unless solved with --solve alpha.")] = None,
+        solve: Annotated[Optional[str], typer.Option("--solve", help="Quantity to solve: n | "
+                         "effect-size | power | alpha. Optional: inferred when exactly one of "
+                         "--effect-size, --n, --power is left out; needed only for alpha.")] = None,
+        alternative: Annotated[str, typer.Option("--alternative", help="two-sided | greater | less "
+                               "(t designs; F tests are two-sided).")] = "two-sided",
+        df_numerator: Annotated[Optional[int], typer.Option("--df-numerator", help="F: numerator "
+                                "df (k - 1 for a one-way ANOVA of k groups).")] = None,
+        groups: Annotated[Optional[int], typer.Option("--groups", help="F: parameters of the full "
+                          "model, intercept included (k for a one-way ANOVA); denominator df = N - "
+                          "groups. Default: --df-numerator + 1.")] = None,
+        curve: Annotated[Optional[str], typer.Option("--curve", help="Also print the power at "
+                         "these sample sizes, e.g. 16,24,32.")] = None,
+        as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False) -> None:
+    """Power and sample size of a t or F test (see ``glmeeg.power.solve_power``)."""
+    import json
+
+    from .errors import GlmeegError
+    from .power import power_curve, solve_power
+
+    given = {"effect-size": effect_size, "n": n, "power": target_power}
+    if solve is not None:
+        if solve not in ("n", "effect-size", "power", "alpha"):
+            raise GlmeegError(f"--solve: expected one of n, effect-size, power, alpha, got {solve!r}")
+        if solve == "alpha" and alpha is not None:
+            raise GlmeegError("--solve alpha: leave out --alpha, the quantity solved")
+        if solve != "alpha" and given[solve] is not None:
+            raise GlmeegError(f"--solve {solve}: leave out --{solve}, the quantity solved")
+    missing = [name for name, value in given.items() if value is None]
+    if solve == "alpha" and missing:
+        raise GlmeegError(f"--solve alpha: give --effect-size, --n and --power; missing "
+                          f"{', '.join('--' + m for m in missing)}")
+    if len(missing) > 1:
+        raise GlmeegError(f"more than one unknown: {' and '.join('--' + m for m in missing)} are "
+                          f"missing; give all but one of --effect-size, --n, --power")
+    if not missing and solve != "alpha":
+        raise GlmeegError("nothing to solve: leave out one of --effect-size, --n, --power "
+                          "(or give all three and --solve alpha)")
+    if solve != "alpha" and alpha is None:
+        alpha = 0.05
+
+    try:
+        solution = solve_power(design=design, effect_size=effect_size, n=n, alpha=alpha,
+                               power=target_power, alternative=alternative,
+                               df_numerator=df_numerator, groups=groups)
+        table = None
+        if curve is not None:
+            table = power_curve(design=design, effect_size=solution.effect_size, alpha=solution.alpha,
+                                n_values=_parse_curve(curve), alternative=alternative,
+                                df_numerator=df_numerator, groups=groups)
+    except GlmeegError as e:
+        # The library names its keywords; here the user typed options.
+        name, sep, rest = str(e).partition(": ")
+        if sep and name in _POWER_OPTIONS:
+            raise GlmeegError(f"{_POWER_OPTIONS[name]}: {rest}") from None
+        raise
+
+    if as_json:
+        record = solution.model_dump(mode="json")
+        record["warnings"] = list(solution.warnings)
+        record["assumptions"] = solution.assumptions()
+        if table is not None:
+            record["curve"] = table.to_dict(orient="records")
+        typer.echo(json.dumps(record))
+        return
+    typer.echo(str(solution))
+    if table is not None:
+        per = " per group" if solution.design == "two-sample" else ""
+        typer.echo(f"power at other sample sizes (n{per}; effect size {solution.effect_size:.4g}, "
+                   f"alpha {solution.alpha:.4g}):")
+        typer.echo(table.to_string(index=False, float_format=lambda x: f"{x:.4f}"))
+
+
 def main() -> None:  # console-script entry point
     app()
 
