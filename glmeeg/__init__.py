@@ -11,6 +11,7 @@ from .axes import Axes
 from .errors import ContrastError, DesignFileError, FormulaError, GlmeegError, ModelError, StudyError
 from .group_level import GroupStatistics, group_test
 from .inference import Bonferroni, FalseDiscoveryRate, Holm, NoCorrection, adjust_p
+from .power import PowerSolution, power_curve, solve_power
 from .pipeline import AnalysisPlan, fit_subjects, plan_analysis, run_analysis, test_group
 from .results import RunResult, TestResult, load_result, load_run, write_run
 from .spec import DesignSpec, load_design
@@ -22,4 +23,4 @@ __all__ = ["__version__", "Axes", "GlmeegError", "DesignFileError", "StudyError"
            "OLSFit", "fit_ols", "GroupStatistics", "group_test", "NoCorrection", "Bonferroni",
            "Holm", "FalseDiscoveryRate", "adjust_p", "AnalysisPlan", "plan_analysis",
            "fit_subjects", "test_group", "run_analysis", "TestResult", "RunResult",
-           "load_result", "load_run", "write_run"]
+           "load_result", "load_run", "write_run", "solve_power", "power_curve", "PowerSolution"]
