@@ -17,6 +17,7 @@ import numpy as np
 import scipy.special
 import scipy.stats
 
+from .effect_sizes import noncentrality_interval_f, noncentrality_interval_t
 from .errors import ModelError
 from .subject_level import fit_ols
 
@@ -47,6 +48,10 @@ class GroupStatistics:
         t: d (estimate / residual SD; Cohen's dz for a one-sample design) and Hedges' g.
         F: partial eta squared and partial epsilon squared.
     effect_size_name, effect_size_corrected_name : str
+    effect_size_low, effect_size_high : numpy.ndarray
+        Limits of the ``confidence_level`` interval of ``effect_size`` from the noncentral t
+        (d) or F (partial eta squared) distribution.
+    confidence_level : float
     """
 
     kind: Literal["t", "F"]
@@ -60,6 +65,9 @@ class GroupStatistics:
     effect_size_corrected: np.ndarray
     effect_size_name: str
     effect_size_corrected_name: str
+    effect_size_low: np.ndarray
+    effect_size_high: np.ndarray
+    confidence_level: float
 
 
 def hedges_factor(df: float) -> float:
@@ -91,7 +99,7 @@ def p_values(statistic: np.ndarray, kind: str, df: tuple[float, float], *,
 
 
 def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, *,
-               alternative: Alternative = "two-sided") -> GroupStatistics:
+               alternative: Alternative = "two-sided", confidence_level: float = 0.95) -> GroupStatistics:
     """Test a group contrast of subjects' contrast estimates at every point.
 
     Parameters
@@ -105,6 +113,8 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
         ``(m, q)`` group contrast weights.
     alternative : {"two-sided", "greater", "less"}, default "two-sided"
         Direction of a t test; F tests are always upper-tailed and need "two-sided".
+    confidence_level : float, default 0.95
+        Level of the effect-size intervals (two-sided, from the noncentral t or F).
 
     Returns
     -------
@@ -129,6 +139,9 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
       covariance matrix on ``ν = n - q`` df; ``F = (ν - k + 1) / (k ν) T²`` on
       ``(k, ν - k + 1)`` df [1]_.
 
+    Effect-size intervals invert the noncentral t (for d) or F (for partial eta squared,
+    ``λ / (λ + ν₁ + ν₂ + 1)``) distribution at the observed statistic [5]_.
+
     Effect sizes: for t, ``d = c B / s`` (with an intercept-only design and ``c = 1`` this is
     Cohen's dz; with two groups and ``c`` their difference, d with the pooled SD [2]_) and
     Hedges' ``g = J(ν) d`` [3]_; for F, partial eta squared ``F m / (F m + ν₂)`` and Kelley's
@@ -143,7 +156,12 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
     .. [3] Hedges, L. V. (1981). Journal of Educational Statistics, 6(2), 107-128.
     .. [4] Okada, K. (2013). Is omega squared less biased? A comparison of three major effect
        size indices in one-way ANOVA. Behaviormetrika, 40(2), 129-147.
+    .. [5] Steiger, J. H. (2004). Beyond the F test: effect size confidence intervals and tests
+       of close fit in the analysis of variance and contrast analysis. Psychological Methods,
+       9(2), 164-182.
     """
+    if not 0 < confidence_level < 1:
+        raise ModelError(f"confidence_level must be between 0 and 1; got {confidence_level!r}")
     if alternative not in ALTERNATIVES:
         raise ModelError(f"alternative must be one of {', '.join(ALTERNATIVES)}; got {alternative!r}")
     Y = np.asarray(estimates, dtype=np.float64)
@@ -182,6 +200,9 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
             j = hedges_factor(dfe)
             es, es_c = d, j * d
             names = ("dz", "gz") if q == 1 else ("d", "g")
+            lo, hi = noncentrality_interval_t(stat, dfe, confidence=confidence_level)
+            scale = np.sqrt(c @ V @ c)  # d = t * sqrt(c V c')
+            es_lo, es_hi = lo * scale, hi * scale
         else:
             if k == 1:
                 est = L @ B[:, 0, :]                              # (m, P)
@@ -208,8 +229,12 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
             es = stat * df[0] / (stat * df[0] + df[1])
             es_c = (stat - 1) * df[0] / (stat * df[0] + df[1])
             names = ("partial eta squared", "partial epsilon squared")
+            lam_lo, lam_hi = noncentrality_interval_f(stat, df[0], df[1], confidence=confidence_level)
+            total = df[0] + df[1] + 1
+            es_lo, es_hi = lam_lo / (lam_lo + total), lam_hi / (lam_hi + total)
     p = p_values(stat, "t" if (k == 1 and m == 1) else "F", df, alternative=alternative)
     return GroupStatistics(kind="t" if (k == 1 and m == 1) else "F", estimate=est,
                            standard_error=se, statistic=stat, df=df, p=p, alternative=alternative,
                            effect_size=es, effect_size_corrected=es_c, effect_size_name=names[0],
-                           effect_size_corrected_name=names[1])
+                           effect_size_corrected_name=names[1], effect_size_low=es_lo,
+                           effect_size_high=es_hi, confidence_level=confidence_level)

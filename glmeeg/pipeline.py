@@ -277,7 +277,7 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
     idx = [estimates.subjects.index(s) for s in test.subjects]
     Y = estimates.estimates[idx][:, estimates.rows[test.spec.name], :]
     stats = group_test(Y, test.group_matrix.matrix, test.group_contrast.matrix,
-                       alternative=test.spec.alternative)
+                       alternative=test.spec.alternative, confidence_level=test.spec.confidence_level)
     correction = test.spec.correction_settings()
     alpha = test.spec.alpha
     notes = list(test.notes)
@@ -333,7 +333,8 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
                       effect_size_corrected=stats.effect_size_corrected,
                       effect_size_name=stats.effect_size_name,
                       effect_size_corrected_name=stats.effect_size_corrected_name,
-                      notes=tuple(notes), provenance=prov, **extra)
+                      effect_size_low=stats.effect_size_low, effect_size_high=stats.effect_size_high,
+                      confidence_level=stats.confidence_level, notes=tuple(notes), provenance=prov, **extra)
 
 
 def run_analysis(design: str | Path | AnalysisPlan, *,

@@ -33,6 +33,7 @@ from pydantic import BaseModel, ConfigDict, PlainSerializer, PlainValidator, Val
 
 from .axes import Axes
 from .errors import GlmeegError
+from .effect_sizes import size_label
 from .findings import CLUSTER_CAUTION, Cluster, clusters_frame
 from .inference.corrections import Correction
 from .spec import TestSpec
@@ -120,9 +121,11 @@ class SubjectSummary(_Frozen):
 _ARRAYS = ("estimate", "standard_error", "statistic", "p", "p_corrected", "significant",
            "effect_size", "effect_size_corrected", "subject_contrast", "group_contrast")
 # Arrays present only for permutation-based corrections.
-_OPTIONAL_ARRAYS = ("p_permutation", "tfce", "cluster", "null_distribution")
+_OPTIONAL_ARRAYS = ("p_permutation", "tfce", "cluster", "null_distribution", "effect_size_low",
+                    "effect_size_high")
 _MAPS = ("estimate", "standard_error", "statistic", "p", "p_corrected", "significant",
-         "effect_size", "effect_size_corrected", "p_permutation", "tfce", "cluster")
+         "effect_size", "effect_size_corrected", "p_permutation", "tfce", "cluster",
+         "effect_size_low", "effect_size_high")
 
 
 class Resampling(_Frozen):
@@ -170,6 +173,9 @@ class TestResult(_Frozen):
     effect_size_corrected: Array
     effect_size_name: str
     effect_size_corrected_name: str
+    effect_size_low: Array | None = None
+    effect_size_high: Array | None = None
+    confidence_level: float = 0.95
     p_permutation: Array | None = None
     tfce: Array | None = None
     cluster: Array | None = None
@@ -226,7 +232,12 @@ class TestResult(_Frozen):
             df["cluster"] = pd.array(np.where(self.cluster > 0, self.cluster, 0), dtype="Int64")
             df.loc[self.cluster == 0, "cluster"] = pd.NA
         df["effect_size"] = self.effect_size
+        if self.effect_size_low is not None:
+            df["effect_size_low"] = self.effect_size_low
+            df["effect_size_high"] = self.effect_size_high
         df["effect_size_corrected"] = self.effect_size_corrected
+        if self.kind == "t":
+            df["effect_size_label"] = size_label(self.effect_size)
         return df
 
     def clusters_frame(self) -> pd.DataFrame:
@@ -269,7 +280,9 @@ class TestResult(_Frozen):
             out["peak"] = {**{k: _plain(v) for k, v in labels.iloc[i].items()},
                            "statistic": float(self.statistic[i]), "p": float(self.p[i]),
                            "p_corrected": float(self.p_corrected[i]),
-                           "effect_size": float(self.effect_size[i])}
+                           "effect_size": float(self.effect_size[i]),
+                           "effect_size_interval": ([float(self.effect_size_low[i]), float(self.effect_size_high[i])]
+                                                    if self.effect_size_low is not None else None)}
         if sig.any():
             labels = self.axes.point_labels()[sig]
             spans = labels.groupby("channel", sort=False)["time"].agg(["min", "max", "size"])
@@ -306,7 +319,10 @@ class TestResult(_Frozen):
             where = ", ".join(f"{k} {pk[k]:g}" if k != "channel" else f"channel {pk[k]}"
                               for k in ("channel", "frequency", "time") if k in pk)
             lines.append(f"  peak: {where}: {self.kind} = {pk['statistic']:.3f}, p = {pk['p']:.3g}, "
-                         f"corrected p = {pk['p_corrected']:.3g}, {self.effect_size_name} = {pk['effect_size']:.3f}")
+                         f"corrected p = {pk['p_corrected']:.3g}, {self.effect_size_name} = {pk['effect_size']:.3f}"
+                         + (f" [{100 * self.confidence_level:g} % CI {pk['effect_size_interval'][0]:.3f}, "
+                            f"{pk['effect_size_interval'][1]:.3f}]" if pk.get("effect_size_interval") else "")
+                         + (f" ({size_label(pk['effect_size'])})" if self.kind == "t" else ""))
         for ch in f["channels"][:40]:
             lines.append(f"    {ch['channel']:>8}: {1000 * ch['first_time']:7.0f} to "
                          f"{1000 * ch['last_time']:5.0f} ms ({ch['n_points']} points)")

@@ -118,6 +118,7 @@ class TestSpec(_Strict):
     correction: CorrectionName = "fdr"
     alpha: float = Field(0.05, gt=0, lt=1)
     alternative: Alternative = "two-sided"
+    confidence_level: float = Field(0.95, gt=0, lt=1, description="level of the effect-size intervals")
     permutations: int | None = Field(None, ge=1, le=10_000_000,
                                      description="resamplings for max / cluster / tfce (default 5000)")
     seed: int | None = Field(None, ge=0, le=2**63 - 1, description="seed of the resamplings")

@@ -13,7 +13,10 @@ from typer.testing import CliRunner
 import glmeeg
 from conftest import write_study
 from glmeeg.cli import app
-from glmeeg.results import _ARRAYS
+from glmeeg.results import _ARRAYS, _OPTIONAL_ARRAYS
+
+# Every array a result may hold; the optional ones are None for some corrections.
+ALL_ARRAYS = _ARRAYS + _OPTIONAL_ARRAYS
 
 TESTS = """\
 [[test]]
@@ -53,8 +56,10 @@ def run_tf(tmp_path_factory) -> tuple[glmeeg.RunResult, object]:
     return glmeeg.run_analysis(design), out
 
 
-def same_bits(a: np.ndarray, b: np.ndarray) -> bool:
+def same_bits(a: np.ndarray | None, b: np.ndarray | None) -> bool:
     # Compares bytes, so NaNs at the same places count as equal and -0.0 != 0.0.
+    if a is None or b is None:
+        return a is None and b is None
     return a.dtype == b.dtype and a.shape == b.shape and a.tobytes() == b.tobytes()
 
 
@@ -63,9 +68,9 @@ def test_save_load_round_trip_is_lossless(run, tmp_path):
     loaded = glmeeg.load_run(out)
     assert [t.name for t in loaded] == [t.name for t in run.tests]
     for t, back in zip(run.tests, loaded):
-        for field in _ARRAYS:
+        for field in ALL_ARRAYS:
             assert same_bits(getattr(t, field), getattr(back, field)), field
-        assert back.model_dump(exclude=set(_ARRAYS)) == t.model_dump(exclude=set(_ARRAYS))
+        assert back.model_dump(exclude=set(ALL_ARRAYS)) == t.model_dump(exclude=set(ALL_ARRAYS))
         assert back.axes == t.axes and back.correction == t.correction and back.spec == t.spec
         # Loading the file directly, or the folder, gives the same.
         direct = glmeeg.load_result(out / t.name / "result.npz")
@@ -113,8 +118,8 @@ def test_constructing_a_result_copies_the_input_array(run):
     t = run.test("b-vs-a")
     stat = np.array(t.statistic)  # writeable copy
     copy = t.model_copy(update={})
-    rebuilt = type(t).model_validate({**t.model_dump(exclude=set(_ARRAYS)),
-                                      **{f: getattr(t, f) for f in _ARRAYS}, "statistic": stat})
+    rebuilt = type(t).model_validate({**t.model_dump(exclude=set(ALL_ARRAYS)),
+                                      **{f: getattr(t, f) for f in ALL_ARRAYS}, "statistic": stat})
     stat[0] = 123.0
     assert rebuilt.statistic[0] != 123.0 and not rebuilt.statistic.flags.writeable
     assert same_bits(copy.statistic, t.statistic)
@@ -135,7 +140,8 @@ def test_to_frame_one_row_per_point_with_labels(run):
 def test_t_frame_columns(run):
     frame = run.test("b-vs-a").to_frame()
     assert list(frame.columns) == ["channel", "time", "estimate", "standard_error", "statistic", "p",
-                                   "p_corrected", "significant", "effect_size", "effect_size_corrected"]
+                                   "p_corrected", "significant", "effect_size", "effect_size_low",
+                                   "effect_size_high", "effect_size_corrected", "effect_size_label"]
     np.testing.assert_array_equal(frame["estimate"], run.test("b-vs-a").estimate[0])
 
 
