@@ -154,3 +154,54 @@ def weighted_row_sums(W, R, block):  # pragma: no cover - compiled
                 out[r, lo + j] = a0[j]
             r += 1
     return out
+
+
+@njit(parallel=True, cache=True, nogil=True)
+def t_from_projections(U, k, rz2, scale):  # pragma: no cover - compiled
+    """t maps of resampled data from their projections ``U`` (B x q x P) on the design basis:
+    ``t = (k @ U) / sqrt((rz2 - |U|²) * scale)`` per map and point, one pass over ``U``."""
+    B, q, P = U.shape
+    out = np.empty((B, P))
+    for b in prange(B):
+        for p in range(P):
+            num = 0.0
+            ss = rz2[p]
+            for j in range(q):
+                u = U[b, j, p]
+                num += k[j] * u
+                ss -= u * u
+            out[b, p] = num / np.sqrt(ss * scale)
+    return out
+
+
+@njit(parallel=True, cache=True, nogil=True)
+def scan_maps(maps, edge, mode, sign, counts_out):  # pragma: no cover - compiled
+    """One pass over resampled maps (B x P), in place.
+
+    For each map: the largest oriented value (``mode`` 0: |x|, 1: x, 2: -x), and per point
+    whether the oriented value reaches ``edge`` (summed into ``counts_out``, B x P int8 scratch
+    reduced by the caller). The map is overwritten with ``sign * x`` and non-finite values
+    with 0, ready for the cluster and TFCE kernels.
+    """
+    B, P = maps.shape
+    best = np.empty(B)
+    for b in prange(B):
+        m = -np.inf
+        for p in range(P):
+            x = maps[b, p]
+            if np.isfinite(x):
+                if mode == 0:
+                    o = abs(x)
+                elif mode == 1:
+                    o = x
+                else:
+                    o = -x
+                if o > m:
+                    m = o
+                counts_out[b, p] = 1 if o >= edge[p] else 0
+                maps[b, p] = sign * x
+            else:
+                counts_out[b, p] = 0
+                maps[b, p] = 0.0
+        best[b] = m
+    return best

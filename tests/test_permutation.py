@@ -210,7 +210,7 @@ def test_results_are_bitwise_identical_for_any_batch_size(method, scheme, k, mon
         results[batch] = permutation_test(Y, G, L, kind=stats.kind, df=stats.df,
                                           correction=CORRECTIONS[method](permutations=150, seed=8),
                                           graph=graph, memory_limit=limit)
-        assert max(seen[1:]) == min(batch, 150)      # seen[0] is the observed data alone
+        assert max(seen[1:]) == min(batch, perm._MAX_BATCH, 150)  # seen[0]: the observed data alone
     ref = results[1]
     # 150 random resamplings: two seed blocks of BLOCK = 100, the second one partial.
     assert ref.scheme == scheme and ref.n_resamplings == 150 and not ref.exhaustive

@@ -62,6 +62,8 @@ BLOCK = 100
 # identity (and exact ties) count as "at least as extreme" despite rounding.
 _TIE = 1e-12
 _KERNEL_BLOCK = 512
+# Resampled maps per batch at most (cache-sized work; memory_limit may lower it).
+_MAX_BATCH = 64
 
 Scheme = Literal["sign-flip", "permute"]
 
@@ -219,6 +221,11 @@ class _Engine:
         q = self.qt.shape[0]
         U = weighted_row_sums(np.ascontiguousarray(W.reshape(B * q, self.n)), self.R, _KERNEL_BLOCK)
         U = U.reshape(B, q, self.k, self.P)
+        if self.k == 1 and self.m == 1:
+            from ..kernels import t_from_projections
+            with np.errstate(divide="ignore", invalid="ignore"):
+                return t_from_projections(U[:, :, 0, :], np.ascontiguousarray(self.K[0]), self.rz2,
+                                          self.KKt[0, 0] / self.dfe)
         A = np.einsum("mq,bqkp->bmkp", self.K, U)
         with np.errstate(divide="ignore", invalid="ignore"):
             if self.k == 1:
@@ -332,31 +339,38 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
     sign = -1.0 if (kind == "t" and alternative == "less") else 1.0
     indptr, indices = graph if graph is not None else (None, None)
 
-    def batch_max(maps: np.ndarray) -> np.ndarray:
-        maps = np.where(np.isfinite(maps), maps, 0.0)
+    mode = 1 if (kind == "F" or alternative == "greater") else (2 if alternative == "less" else 0)
+
+    def batch_max(maps: np.ndarray, best: np.ndarray) -> np.ndarray:
+        # ``maps`` hold sign * statistic with non-finite values set to 0 (see scan_maps).
         if correction.method == "max":
-            return np.max(_oriented(maps, kind, alternative), axis=1)
-        directed = np.ascontiguousarray(sign * maps)
+            return best
         if correction.method == "cluster":
             from .clusters import max_cluster_statistic
-            both = max_cluster_statistic(directed, indptr, indices, threshold,
+            both = max_cluster_statistic(maps, indptr, indices, threshold,
                                          statistic=correction.statistic,
                                          tails="both" if two_tails else "positive")
         else:
             from .tfce import max_tfce
-            both = max_tfce(directed, indptr, indices, extent_exponent=correction.extent_exponent,
+            both = max_tfce(maps, indptr, indices, extent_exponent=correction.extent_exponent,
                             height_exponent=correction.height_exponent)
         return both.max(axis=1) if two_tails else both[:, 0]
 
+    from ..kernels import scan_maps
+
     per_map = P * 8 * (engine.qt.shape[0] * k + 6)
-    batch = int(max(1, min(rows.shape[0], memory_limit // max(per_map, 1))))
+    # Small batches keep the maps in cache; results do not depend on the batch size.
+    batch = int(max(1, min(rows.shape[0], _MAX_BATCH, memory_limit // max(per_map, 1))))
     null = np.empty(rows.shape[0])
     counts = np.zeros(P, dtype=np.int64)
-    edge = obs_or_f - _TIE * np.abs(np.where(finite, obs_or, 0.0))
+    edge = np.where(finite, obs_or - _TIE * np.abs(np.where(finite, obs_or, 0.0)), np.inf)
+    hits = np.empty((batch, P), dtype=np.int8)
     for start in range(0, rows.shape[0], batch):
-        maps = engine.statistics(rows[start:start + batch])
-        counts += (np.where(np.isfinite(maps), _oriented(maps, kind, alternative), -np.inf) >= edge).sum(axis=0)
-        null[start:start + batch] = batch_max(maps)
+        maps = np.ascontiguousarray(engine.statistics(rows[start:start + batch]))
+        h = hits[:maps.shape[0]]
+        best = scan_maps(maps, edge, mode, sign, h)
+        counts += h.sum(axis=0, dtype=np.int64)
+        null[start:start + batch] = batch_max(maps, best)
 
     N = rows.shape[0]
     add = 0 if exhaustive else 1
