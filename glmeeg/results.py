@@ -386,11 +386,12 @@ def load_result(path: str | Path) -> TestResult:
     if not path.is_file():
         raise GlmeegError(f"{path}: no saved glmeeg result here")
     try:
-        with np.load(path, allow_pickle=False) as z:
+        # The file is opened here so that it is closed even when numpy cannot parse it.
+        with open(path, "rb") as fh, np.load(fh, allow_pickle=False) as z:
             meta = json.loads(str(z["meta"]))
             arrays = {k: z[k] for k in _ARRAYS}
             arrays.update({k: z[k] for k in _OPTIONAL_ARRAYS if k in z.files})
-    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile) as e:
+    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, AttributeError, TypeError) as e:
         raise GlmeegError(f"{path}: not a glmeeg result file ({e or type(e).__name__})") from None
     if not isinstance(meta, dict):
         raise GlmeegError(f"{path}: not a glmeeg result file (settings are not a JSON object)")

@@ -125,6 +125,44 @@ def _relative(path: Path, root: Path) -> str:
         return str(path)
 
 
+@dataclass(frozen=True)
+class _Header:
+    shape: tuple[int, ...]
+    dtype: np.dtype
+
+    @property
+    def ndim(self) -> int:
+        return len(self.shape)
+
+
+def _epoch_header(path: Path, subject: str, label: str) -> _Header:
+    """Shape and dtype of an epoch array from its .npy header alone (the file is closed after)."""
+    if not path.is_file():
+        raise StudyError(f"subject {subject}: epoch file {label} not found")
+    readers = {(1, 0): np.lib.format.read_array_header_1_0, (2, 0): np.lib.format.read_array_header_2_0}
+    try:
+        with open(path, "rb") as fh:
+            version = np.lib.format.read_magic(fh)
+            reader = readers.get(version)
+            if reader is None:  # a newer header layout: let numpy read it
+                arr = _open_epochs(path, subject, label)
+                return _Header(shape=tuple(arr.shape), dtype=arr.dtype)
+            shape, _, dtype = reader(fh)
+    except (ValueError, OSError, EOFError) as e:
+        raise StudyError(f"subject {subject}: {label} is not a readable NumPy .npy array "
+                         f"({str(e).splitlines()[0] if str(e) else type(e).__name__})") from None
+    if dtype.hasobject:
+        raise StudyError(f"subject {subject}: {label} holds Python objects (a pickle); expected "
+                         "a plain float32 or float64 array")
+    if dtype.kind != "f" or dtype.itemsize not in (4, 8):
+        raise StudyError(f"subject {subject}: {label} has dtype {dtype}; expected float32 or float64")
+    expected = int(np.prod(shape)) * dtype.itemsize
+    if path.stat().st_size < expected:
+        raise StudyError(f"subject {subject}: {label} is truncated: its header promises {expected} "
+                         "bytes of data")
+    return _Header(shape=tuple(int(x) for x in shape), dtype=dtype)
+
+
 def _open_epochs(path: Path, subject: str, label: str) -> np.ndarray:
     if not path.is_file():
         raise StudyError(f"subject {subject}: epoch file {label} not found")
@@ -244,7 +282,7 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
     for s in order:
         path = _resolve(root, spec.epochs.format(subject=s))
         label = _relative(path, root)
-        arr = _open_epochs(path, s, label)
+        arr = _epoch_header(path, s, label)
         if arr.ndim not in (3, 4):
             raise StudyError(f"subject {s}: {label} has {arr.ndim} dimensions; expected 3 (epochs, "
                              "channels, times) or 4 (epochs, channels, frequencies, times)")
