@@ -16,6 +16,7 @@ from .pipeline import AnalysisPlan, fit_subjects, plan_analysis, run_analysis, t
 from .results import RunResult, TestResult, load_result, load_run, write_run
 from .spec import DesignSpec, load_design
 from .study import Study, read_study
+from .robust import RobustFit, fit_robust
 from .subject_level import OLSFit, fit_ols
 
 __all__ = ["__version__", "Axes", "GlmeegError", "DesignFileError", "StudyError", "FormulaError",
@@ -23,4 +24,5 @@ __all__ = ["__version__", "Axes", "GlmeegError", "DesignFileError", "StudyError"
            "OLSFit", "fit_ols", "GroupStatistics", "group_test", "NoCorrection", "Bonferroni",
            "Holm", "FalseDiscoveryRate", "adjust_p", "AnalysisPlan", "plan_analysis",
            "fit_subjects", "test_group", "run_analysis", "TestResult", "RunResult",
-           "load_result", "load_run", "write_run", "solve_power", "power_curve", "PowerSolution"]
+           "load_result", "load_run", "write_run", "solve_power", "power_curve", "PowerSolution",
+           "fit_robust", "RobustFit"]

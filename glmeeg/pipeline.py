@@ -129,6 +129,9 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
     warnings = list(study.warnings)
     sdesign = build_design(study.trials, spec.subject_model.formula, levels=spec.subject_model.levels,
                            source=spec.data.trials, where="subject_model.formula")
+    if spec.subject_model.trial_weights is not None and spec.subject_model.trial_weights not in study.trials.columns:
+        raise StudyError(f"subject_model.trial_weights: {spec.subject_model.trial_weights!r} is not a "
+                         f"column of {spec.data.trials}")
     matrices = {s: design_matrix(sdesign, study.subject_trials(s), who=f"subject {s}")
                 for s in study.subject_ids}
     for s, X in matrices.items():
@@ -252,8 +255,24 @@ def fit_subjects(plan: AnalysisPlan, *, progress: Callable[[str, int, int], None
         trials = st.subject_trials(s)
         epochs = trials["epoch"].to_numpy()[X.kept]
         Y = st.read_epochs(s, epochs)
-        fit = fit_ols(X.matrix, Y)
-        bad = ~(np.isfinite(fit.residual_variance) & np.isfinite(fit.betas).all(axis=0))
+        weights = _trial_weights(plan, trials, X, s)
+        robust_info = {}
+        sm = plan.spec.subject_model
+        if sm.robust is not None:
+            from .robust import fit_robust
+            options = {k: v for k, v in (("tuning", sm.robust_tuning),
+                                          ("max_iterations", sm.robust_max_iterations),
+                                          ("tolerance", sm.robust_tolerance)) if v is not None}
+            fit = fit_robust(X.matrix, Y, norm=sm.robust, weights=weights, **options)
+            robust_info = {"robust_iterations_max": int(fit.iterations.max()),
+                           "robust_unconverged_points": int((~fit.converged).sum())}
+        elif weights is not None:
+            keep = weights > 0
+            root = np.sqrt(weights[keep])
+            fit = fit_ols(X.matrix[keep] * root[:, None], np.asarray(Y[keep], dtype=np.float64) * root[:, None])
+        else:
+            fit = fit_ols(X.matrix, Y)
+        bad = ~np.isfinite(fit.betas).all(axis=0)
         if bad.any():
             cols = np.flatnonzero(bad)[:1000]
             ep = np.unique(epochs[np.flatnonzero(~np.isfinite(Y[:, cols]).all(axis=1))])
@@ -264,11 +283,26 @@ def fit_subjects(plan: AnalysisPlan, *, progress: Callable[[str, int, int], None
         summaries.append(SubjectSummary(subject=s, epochs_in_file=st.epoch_counts[s],
                                         trials_listed=len(trials), trials_used=int(X.kept.sum()),
                                         rows_dropped=X.n_dropped, df_resid=fit.df_resid,
-                                        condition_number=X.condition_number))
+                                        condition_number=X.condition_number, **robust_info))
         log.debug("subject %s fitted: %d trials", s, X.kept.sum())
         if progress:
             progress(s, i + 1, len(st.subject_ids))
     return SubjectEstimates(subjects=st.subject_ids, estimates=out, rows=rows, summaries=tuple(summaries))
+
+
+def _trial_weights(plan: AnalysisPlan, trials: pd.DataFrame, X: DesignMatrix, subject: str):
+    """The subject's trial weights (kept rows), or None when the design sets none."""
+    column = plan.spec.subject_model.trial_weights
+    if column is None:
+        return None
+    w = pd.to_numeric(trials[column], errors="coerce").to_numpy(dtype=np.float64)[X.kept]
+    if not np.all(np.isfinite(w)) or np.any(w < 0):
+        raise StudyError(f"subject {subject}: {plan.spec.data.trials} column {column!r} must hold "
+                         "finite, non-negative trial weights")
+    if np.count_nonzero(w) <= X.matrix.shape[1]:
+        raise StudyError(f"subject {subject}: only {np.count_nonzero(w)} trials have a positive weight "
+                         f"in {column!r}; the model has {X.matrix.shape[1]} columns")
+    return w
 
 
 def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, *,

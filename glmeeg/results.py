@@ -116,6 +116,8 @@ class SubjectSummary(_Frozen):
     rows_dropped: int
     df_resid: int
     condition_number: float
+    robust_iterations_max: int | None = None
+    robust_unconverged_points: int | None = None
 
 
 _ARRAYS = ("estimate", "standard_error", "statistic", "p", "p_corrected", "significant",

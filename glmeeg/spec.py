@@ -101,6 +101,21 @@ class _ModelSpec(_Strict):
 class SubjectModelSpec(_ModelSpec):
     """Single-trial model fitted in every subject (right-hand side of a patsy formula)."""
 
+    robust: Literal["huber", "bisquare"] | None = Field(
+        None, description="M-estimation instead of least squares (iteratively reweighted)")
+    robust_tuning: float | None = Field(None, gt=0, le=100, allow_inf_nan=False,
+                                        description="tuning constant; default 1.345 (huber), 4.685 (bisquare)")
+    robust_max_iterations: int | None = Field(None, ge=1, le=10_000)
+    robust_tolerance: float | None = Field(None, gt=0, lt=1)
+    trial_weights: str | None = Field(None, description="trials-table column of non-negative trial weights")
+
+    @model_validator(mode="after")
+    def _robust_keys(self) -> "SubjectModelSpec":
+        for key in ("robust_tuning", "robust_max_iterations", "robust_tolerance"):
+            if getattr(self, key) is not None and self.robust is None:
+                raise ValueError(f"{key} applies only with robust = huber | bisquare")
+        return self
+
 
 class GroupModelSpec(_ModelSpec):
     """Between-subject model fitted on the subjects' contrast estimates."""

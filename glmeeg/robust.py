@@ -1,0 +1,673 @@
+"""Subject level, robust: M-estimation of the regression at every point.
+
+An alternative to :func:`glmeeg.subject_level.fit_ols` for epochs that may hold artefact trials
+the cleaning missed: a few trials with huge values pull the least-squares betas, whereas an
+M-estimator with Huber's or Tukey's bisquare criterion gives them little or no weight.
+
+The fit is iteratively reweighted least squares, run at every point by one compiled kernel
+(numba, imported and compiled on the first call, not when this module is imported). Each
+point's trials are copied once into a float64 buffer that stays in cache for all of that point's
+iterations, and a point stops as soon as it has converged. The per-iteration median of the
+absolute residuals (the robust scale) is an exact selection among the few trials that fall in a
+narrow band around the previous iteration's median (all trials when the band misses), and the
+weighted cross-products are re-formed only while the weights still move. Chunks of points run
+in threads; each point's arithmetic is the same whatever the chunk or thread, so results do not
+depend on the order, split or thread count of the points.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures
+import functools
+import math
+import numbers
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg
+
+from .errors import ModelError
+
+__all__ = ["RobustFit", "fit_robust", "NORMS"]
+
+# Default tuning constants: 95 % asymptotic efficiency at the normal distribution for a
+# location/regression M-estimator (Huber 1.345; bisquare 4.685) - Holland & Welsch (1977).
+NORMS = {"huber": 1.345, "bisquare": 4.685}
+_NORM_CODES = {"huber": 0, "bisquare": 1}
+# Normal quantile at 3/4: MAD / this is a consistent estimate of sigma at the normal.
+_MAD_CONSTANT = 0.6744897501960817
+# Points per block: the block's trials are copied once, as float64, into a (block x trials)
+# buffer that stays in cache; a chunk of points (a whole number of blocks) is one task for a
+# thread.
+_BLOCK_POINTS = 16
+_CHUNK_POINTS = 1024
+# A Cholesky pivot below this share of its diagonal means the weighted design (robust weights
+# times prior weights) has lost rank at that point; the point stops there (not converged).
+_PIVOT_FLOOR = 1e-10
+# The weighted cross-products are re-formed at the first _EXACT_FITS fits and afterwards only
+# when a weight has moved by more than _REFRESH_CHANGE since they were formed.
+_EXACT_FITS, _REFRESH_CHANGE = 3, 0.05
+# Bracketed selection of the median (speed only, never the result): the band's relative
+# half-width is 0.25 around the previous point's median for the least-squares start (EEG
+# varies slowly from sample to sample), 0.1 around the start's median at the first
+# reweighting, then 3x the last relative change of the point's median;
+# never less than one that holds about _BAND_TRIALS trials (at the normal, |r| has about 0.86 m
+# trials per unit of relative width around its median), nor more than 0.5.
+_BAND_START, _BAND_FIRST, _BAND_TRIALS, _BAND_MAX = 0.25, 0.1, 8, 0.5
+
+
+@dataclass(frozen=True)
+class RobustFit:
+    """Robust (M-estimation) fit at every point.
+
+    Attributes
+    ----------
+    betas : numpy.ndarray
+        ``(n_columns, n_points)`` coefficients.
+    scale : numpy.ndarray
+        ``(n_points,)`` final robust scale estimate: the normalised median absolute residual
+        ``median_i |r_i| / 0.6745`` (centred at 0, not at the median of the residuals) from the
+        last weighted fit, ``r_i`` being the residuals of the prior-weighted model
+        (``sqrt(a_i) (y_i - x_i b)``). It estimates the error standard deviation at the normal.
+        It is not a residual variance: square it for that.
+    covariance_factor : numpy.ndarray
+        ``(n_points,)`` factor ``f`` such that Huber's H1 covariance of the betas at a point is
+        ``f * xtx_inv`` (see Notes of :func:`fit_robust`).
+    xtx_inv : numpy.ndarray
+        ``(n_columns, n_columns)`` inverse cross-product of the (prior-weighted) design.
+    mean_weight : numpy.ndarray
+        ``(n_points,)`` mean over trials of the robust weights used in the last weighted fit
+        (1 where no reweighting took place); a low value flags points where many trials were
+        down-weighted.
+    iterations : numpy.ndarray
+        ``(n_points,)`` int, weighted least-squares steps taken at each point after the
+        least-squares start.
+    converged : numpy.ndarray
+        ``(n_points,)`` bool: no standardized residual moved by more than ``tolerance`` at the
+        last iteration, or the scale was zero (more than half the residuals exactly zero: an exact
+        fit, nothing to reweight). False where ``max_iterations`` was reached, where the weighted
+        design lost rank, or where the data hold NaN or infinity (those points' results are NaN).
+    df_resid : int
+        Trials with a positive prior weight minus columns.
+    norm : str
+        ``"huber"`` or ``"bisquare"``.
+    tuning : float
+        Tuning constant of the norm, in units of ``scale``.
+    tolerance : float
+        Convergence tolerance on the change of the standardized residuals.
+    max_iterations : int
+        Most weighted least-squares steps allowed at a point.
+    """
+
+    betas: np.ndarray
+    scale: np.ndarray
+    covariance_factor: np.ndarray
+    xtx_inv: np.ndarray
+    mean_weight: np.ndarray
+    iterations: np.ndarray
+    converged: np.ndarray
+    df_resid: int
+    norm: str
+    tuning: float
+    tolerance: float
+    max_iterations: int
+
+    def contrast(self, c: np.ndarray) -> np.ndarray:
+        """Contrast estimates ``c @ betas``: ``(rows, n_points)`` for a ``(rows, n_columns)`` c."""
+        return np.atleast_2d(c) @ self.betas
+
+    def contrast_variance(self, c: np.ndarray) -> np.ndarray:
+        """H1 variance of each contrast row at every point: ``(rows, n_points)``."""
+        c = np.atleast_2d(np.asarray(c, dtype=np.float64))
+        quad = np.einsum("ij,jk,ik->i", c, self.xtx_inv, c)
+        return quad[:, None] * self.covariance_factor[None, :]
+
+
+def _conditioning(X: np.ndarray, a: np.ndarray) -> np.ndarray:
+    """Matrix M with ``diag(sqrt(a)) X M`` well conditioned: columns centred on a constant
+    column (a-weighted means) when there is one, then scaled to unit norm."""
+    p = X.shape[1]
+    M = np.eye(p)
+    constant = [j for j in range(p) if X[0, j] != 0 and np.all(X[:, j] == X[0, j])]
+    if constant:
+        j0 = constant[0]
+        means = (a @ X) / a.sum()
+        for j in range(p):
+            if j != j0:
+                M[j0, j] = -means[j] / X[0, j0]
+    norms = np.linalg.norm(np.sqrt(a)[:, None] * X @ M, axis=0)
+    norms[norms == 0] = 1.0
+    return M / norms
+
+
+def _validate(X, Y, norm, tuning, max_iterations, tolerance, weights, scale):
+    """Check every argument of :func:`fit_robust` once; return the normalised ones."""
+    if norm not in NORMS:
+        raise ModelError(f"norm={norm!r} is not known; expected one of {sorted(NORMS)}")
+    if tuning is None:
+        tuning = NORMS[norm]
+    if isinstance(tuning, bool) or not isinstance(tuning, numbers.Real) \
+            or not math.isfinite(tuning) or tuning <= 0:
+        raise ModelError(f"tuning={tuning!r}: must be a finite number > 0")
+    if isinstance(max_iterations, bool) or not isinstance(max_iterations, numbers.Integral) \
+            or max_iterations < 1:
+        raise ModelError(f"max_iterations={max_iterations!r}: must be an integer >= 1")
+    if isinstance(tolerance, bool) or not isinstance(tolerance, numbers.Real) \
+            or not math.isfinite(tolerance) or tolerance < 0:
+        raise ModelError(f"tolerance={tolerance!r}: must be a finite number >= 0")
+    if scale != "mad":
+        raise ModelError(f"scale={scale!r} is not known; expected 'mad'")
+    X = np.asarray(X)
+    if X.ndim != 2 or not (np.issubdtype(X.dtype, np.number) or X.dtype == bool) \
+            or np.iscomplexobj(X):
+        raise ModelError(f"design has shape {X.shape} and dtype {X.dtype}; expected a real "
+                         "(trials, columns) matrix")
+    X = X.astype(np.float64)
+    if not np.all(np.isfinite(X)):
+        raise ModelError("design holds NaN or infinite values")
+    n, p = X.shape
+    Y = np.asarray(Y)
+    if Y.ndim != 2 or Y.shape[0] != n:
+        raise ModelError(f"data have shape {Y.shape}; expected ({n}, points) to match the design")
+    if Y.dtype not in (np.float32, np.float64):
+        if not (np.issubdtype(Y.dtype, np.number) or Y.dtype == bool) or np.iscomplexobj(Y):
+            raise ModelError(f"data have dtype {Y.dtype}; expected real numbers")
+        Y = Y.astype(np.float64)
+    if not Y.flags.c_contiguous:  # one compiled kernel per dtype: copy strided views once
+        Y = np.ascontiguousarray(Y)
+    if weights is None:
+        a = np.ones(n)
+    else:
+        a = np.asarray(weights)
+        if a.shape != (n,) or not (np.issubdtype(a.dtype, np.number) or a.dtype == bool) \
+                or np.iscomplexobj(a):
+            raise ModelError(f"weights have shape {a.shape}; expected ({n},), one per trial")
+        a = a.astype(np.float64)
+        if not np.all(np.isfinite(a)) or np.any(a < 0):
+            raise ModelError("weights must be finite and >= 0; got "
+                             f"min {np.nanmin(a) if a.size else a!r}")
+    rows = np.flatnonzero(a > 0)
+    if rows.size <= p:
+        raise ModelError(f"{rows.size} trials with positive weight for {p} design columns: "
+                         "no residual degrees of freedom")
+    return X, Y, float(tuning), int(max_iterations), float(tolerance), a, rows
+
+
+def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: float | None = None,
+               max_iterations: int = 50, tolerance: float = 1e-8,
+               weights: np.ndarray | None = None, scale: str = "mad") -> RobustFit:
+    """Fit ``Y = X @ B + E`` by M-estimation (Huber or bisquare) at every column of ``Y``.
+
+    Parameters
+    ----------
+    X : numpy.ndarray
+        ``(n_rows, n_columns)`` design matrix of full column rank.
+    Y : numpy.ndarray
+        ``(n_rows, n_points)`` data, float32 or float64 (other real dtypes are converted first);
+        a memory-mapped array is read once.
+    norm : {"huber", "bisquare"}, default "huber"
+        The criterion: Huber's [1]_ (monotone: outliers keep a weight ``tuning / |z|``) or Tukey's
+        bisquare [3]_ (redescending: trials beyond ``tuning`` scales get weight 0).
+    tuning : float, optional
+        Tuning constant in units of the robust scale. Default 1.345 for Huber and 4.685 for the
+        bisquare: 95 % efficiency relative to least squares when the errors are normal [2]_.
+    max_iterations : int, default 50
+        Most weighted least-squares steps at a point after the least-squares start.
+    tolerance : float, default 1e-8
+        A point has converged when no standardized residual ``r_i / scale`` changes by more than
+        this from one iteration to the next.
+    weights : numpy.ndarray, optional
+        ``(n_rows,)`` non-negative prior weights of the trials, read as inverse variances: the
+        model is fitted to ``sqrt(a_i) y_i`` on ``sqrt(a_i) x_i``. Trials with weight 0 are left
+        out (they count neither in the fit nor in the median). Default: all 1.
+    scale : {"mad"}, default "mad"
+        Robust scale re-estimated at every iteration: the median absolute residual divided by
+        0.6745 (the normal quantile at 3/4).
+
+    Returns
+    -------
+    RobustFit
+
+    Raises
+    ------
+    ModelError
+        An unknown ``norm`` or ``scale``; ``tuning`` not > 0; ``max_iterations`` < 1; a negative
+        ``tolerance``; negative or non-finite ``weights``; mismatched shapes; a rank-deficient
+        design; no residual degrees of freedom.
+
+    Notes
+    -----
+    Iteratively reweighted least squares [2]_ with the fitting choices of ``RLM.fit()`` of
+    statsmodels at its defaults: start from least squares; then, at every iteration, the scale
+    ``s = median_i |r_i| / 0.6745`` of the current residuals (centred at 0), the weights
+    ``w_i = psi(z_i) / z_i`` at ``z_i = r_i / s`` (Huber: ``min(1, c / |z|)``; bisquare:
+    ``(1 - (z/c)^2)^2`` for ``|z| <= c``, else 0) and a weighted least-squares step.
+    statsmodels counts the least-squares start as an iteration, so its ``maxiter`` is
+    ``max_iterations + 1``.
+
+    The stopping rule differs from statsmodels' default (``conv="dev"``: the change of
+    ``sum_i rho(r_i / v)`` with ``v`` the residual *variance* of the weighted fit). That
+    criterion depends on the units of the data (in volts it never reaches 1e-8; in larger
+    units it stops early), and it is stationary at the solution, so it moves only with the
+    square of the coefficients' error. Standardized residuals are free of units and move in
+    proportion to the error: ``tolerance`` bounds the last change of the fitted values to about
+    ``tolerance`` scales, and the betas agree with a fully converged statsmodels fit to about
+    that many scales.
+
+    Each step is taken in correction form, ``g <- g + (Xc' W Xc)^{-1} Xc' W r``, on the
+    conditioned design ``Xc = X M`` (columns centred on the intercept and scaled to unit norm,
+    where the cross-product is well conditioned), by Cholesky in float64; the betas are
+    ``M g``. The first three steps form the cross-product of their own weights (they are the
+    plain IRLS iterates, statsmodels' to rounding); later steps reuse it until some weight has
+    moved by more than 0.05 since it was formed. The fixed point solves ``Xc' W r = 0``, the
+    M-estimating equations, whichever matrix is used, and near it the weights have settled, so
+    the reuse changes neither the solution nor, in practice, the number of iterations.
+
+    The H1 covariance of Huber [1]_, statsmodels' default for RLM, is ``f (X'X)^{-1}`` with
+    ``f = K^2 [sum_i psi(z_i)^2 / df_resid] s^2 / m^2``, ``m`` the mean of ``psi'(z_i)`` over
+    trials and ``K = 1 + (n_columns / n_rows) var(psi') / m^2``, all at the final residuals.
+
+    A point stops without converging where a bisquare fit gives zero weight to so many trials
+    that the weighted design loses rank (statsmodels would go on with a pseudo-inverse). NaN or
+    infinity in a point's data make that point's results NaN.
+
+    References
+    ----------
+    .. [1] Huber, P. J. (1964). Robust estimation of a location parameter. The Annals of
+       Mathematical Statistics, 35(1), 73-101.
+    .. [2] Holland, P. W., & Welsch, R. E. (1977). Robust regression using iteratively
+       reweighted least-squares. Communications in Statistics - Theory and Methods, 6(9),
+       813-827.
+    .. [3] Beaton, A. E., & Tukey, J. W. (1974). The fitting of power series, meaning
+       polynomials, illustrated on band-spectroscopic data. Technometrics, 16(2), 147-185.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from glmeeg.robust import fit_robust
+    >>> rng = np.random.default_rng(0)
+    >>> X = np.column_stack([np.ones(40), np.arange(40) % 2])
+    >>> Y = 2.0 + 3.0 * X[:, [1]] + rng.normal(size=(40, 3))
+    >>> Y[0] += 100.0                                  # one artefact trial
+    >>> fit = fit_robust(X, Y, norm="bisquare")
+    >>> bool(np.all(np.abs(fit.betas - [[2.0], [3.0]]) < 0.6)), bool(fit.converged.all())
+    (True, True)
+    """
+    X, Y, tuning, max_iterations, tolerance, a, rows = _validate(
+        X, Y, norm, tuning, max_iterations, tolerance, weights, scale)
+    p = X.shape[1]
+    Xu = X[rows]
+    au = a[rows]
+    root_w = np.sqrt(au)
+    M = _conditioning(Xu, au)
+    Xc = root_w[:, None] * Xu @ M
+    if np.linalg.matrix_rank(Xc) < p:
+        raise ModelError(f"design of {p} columns is rank deficient (on the trials with positive "
+                         "weight); drop or merge columns")
+    Q, R = np.linalg.qr(Xc)
+    r_inv = scipy.linalg.solve_triangular(R, np.eye(p), check_finite=False)
+    ols_map = np.ascontiguousarray(r_inv @ Q.T)  # least-squares start, conditioned coordinates
+    iu, ju = np.triu_indices(p)
+    gram_rows = np.ascontiguousarray((Xc[:, iu] * Xc[:, ju]).T)  # (p(p+1)/2, trials)
+    n_points = Y.shape[1]
+    out = dict(betas=np.full((p, n_points), np.nan), scale=np.full(n_points, np.nan),
+               covariance_factor=np.full(n_points, np.nan),
+               mean_weight=np.full(n_points, np.nan),
+               iterations=np.zeros(n_points, np.int64),
+               converged=np.zeros(n_points, bool))
+    settings = (rows.astype(np.int64), root_w, np.ascontiguousarray(Xc.T), gram_rows, ols_map,
+                _NORM_CODES[norm], tuning, max_iterations, tolerance, _EXACT_FITS,
+                _REFRESH_CHANGE, _MAD_CONSTANT, _PIVOT_FLOOR, _BAND_START, _BAND_FIRST,
+                min(_BAND_MAX, _BAND_TRIALS / (0.86 * rows.size)), _BAND_MAX)
+    _run_blocks(Y, settings, out)
+    out["betas"] = M @ out["betas"]
+    out["xtx_inv"] = (M @ r_inv) @ (M @ r_inv).T
+    for value in out.values():
+        value.setflags(write=False)
+    return RobustFit(**out, df_resid=int(rows.size - p), norm=norm, tuning=tuning,
+                     tolerance=tolerance, max_iterations=max_iterations)
+
+
+def _run_blocks(Y, settings, out):
+    """Run the kernel over blocks of points, shared out to numba's number of threads.
+
+    Every point is computed by the same code on the same values whichever thread or chunk it
+    falls in, so the split never changes a result.
+    """
+    kernel, threads = _compiled_kernel()
+    n_points = Y.shape[1]
+    targets = (out["betas"], out["scale"], out["covariance_factor"], out["mean_weight"],
+               out["iterations"], out["converged"])
+    chunk = _CHUNK_POINTS
+    starts = range(0, n_points, chunk)
+    n_threads = min(threads(), len(starts))
+
+    def run(start):
+        kernel(Y, start, min(start + chunk, n_points), *settings, _BLOCK_POINTS, *targets)
+
+    if n_threads <= 1:
+        for start in starts:
+            run(start)
+        return
+    with concurrent.futures.ThreadPoolExecutor(max_workers=n_threads) as pool:
+        for _ in pool.map(run, starts):  # re-raises a worker's exception here
+            pass
+
+
+@functools.cache
+def _compiled_kernel():
+    """The compiled IRLS kernel (numba, imported only here) and numba's thread-count getter."""
+    import numba
+
+    # reassoc lets the per-point sums over trials use SIMD; each point's arithmetic is still the
+    # same code on the same values, so results do not depend on the block or thread count.
+    # nogil: the chunks of points run in threads of this process.
+    kernel = numba.njit(cache=True, nogil=True, error_model="numpy",
+                        fastmath={"reassoc", "contract"})(_irls_kernel)
+    return kernel, numba.get_num_threads
+
+
+def _irls_kernel(Y, start, stop, rows, root_w, xct, gram_rows, ols_map, norm_code, c,
+                 max_iterations, tolerance, exact_fits, refresh_change, mad_constant, pivot_floor,
+                 band_start, band_first, band_min, band_max, block, gamma_out, scale_out,
+                 factor_out, weight_out, iter_out, conv_out):  # pragma: no cover - compiled
+    """IRLS at the points ``start:stop`` of ``Y`` (see :func:`fit_robust`), written into the
+    output arrays, in conditioned coordinates.
+
+    ``xct`` is the conditioned, prior-weighted design (columns x used trials), ``gram_rows`` its
+    products ``xc_k * xc_l`` (k <= l) per trial, ``ols_map`` the least-squares map.
+
+    Per point, per iteration: residuals; the median of |r| by selection within a band around a
+    guess (all trials if the band misses the middle order statistics; the guesses - the last
+    median, or the previous point's for the least-squares start - change the work, never the
+    result); weights; the weighted least-squares step in correction form,
+    ``g += (Xc' W Xc)^-1 Xc' W r``. Its fixed point solves ``Xc' W r = 0`` (the M-estimating
+    equations) whichever cross-product matrix is used, so the Cholesky factor of ``Xc' W Xc``
+    is re-formed only for the first ``exact_fits`` fits (the plain IRLS iterates) and then when
+    some weight has moved by more than ``refresh_change`` since it was formed; near convergence
+    the weights settle and each step costs the residuals, the median, the weights and
+    ``Xc' W r``.
+    """
+    p = xct.shape[0]
+    m = rows.size
+    q = gram_rows.shape[0]
+    k1 = (m - 1) // 2
+    k2 = m // 2
+    r = np.empty(m)
+    zp = np.empty(m)
+    sel = np.empty(m)
+    wt = np.empty(m)
+    wr = np.empty(m)
+    wref = np.empty(m)
+    g = np.empty(p)
+    A = np.empty((p, p))
+    At = np.empty(q)
+    L = np.empty((p, p))
+    rhs = np.empty(p)
+    ybuf = np.empty((block, m))
+    start_guess = -1.0
+    for lo in range(start, stop, block):
+        w = min(lo + block, stop) - lo
+        for i in range(m):
+            row = rows[i]
+            rw = root_w[i]
+            for j in range(w):
+                ybuf[j, i] = np.float64(Y[row, lo + j]) * rw
+        for j in range(w):
+            y = ybuf[j]
+            probe = 0.0
+            for i in range(m):
+                probe += y[i] * 0.0
+            if probe != 0.0:  # NaN: the point holds NaN or infinity; outputs stay NaN
+                continue
+            for k in range(p):
+                acc = 0.0
+                for i in range(m):
+                    acc += ols_map[k, i] * y[i]
+                g[k] = acc
+            fits = 0
+            converged = False
+            guess = start_guess
+            band = band_start
+            mean_w = 1.0
+            s = 0.0
+            while True:
+                # residuals of the current coefficients, four columns per pass over the trials
+                for i in range(m):
+                    r[i] = y[i]
+                k = 0
+                while k + 4 <= p:
+                    g0 = g[k]
+                    g1 = g[k + 1]
+                    g2 = g[k + 2]
+                    g3 = g[k + 3]
+                    for i in range(m):
+                        r[i] -= ((xct[k, i] * g0 + xct[k + 1, i] * g1)
+                                 + (xct[k + 2, i] * g2 + xct[k + 3, i] * g3))
+                    k += 4
+                while k < p:
+                    gk = g[k]
+                    for i in range(m):
+                        r[i] -= xct[k, i] * gk
+                    k += 1
+                # median of |r|: branch-free compaction of a band around the guess
+                below = 0
+                cnt = 0
+                use_band = False
+                if guess > 0.0:
+                    lo_v = guess * (1.0 - band)
+                    hi_v = guess * (1.0 + band)
+                    for i in range(m):
+                        v = abs(r[i])
+                        sel[cnt] = v
+                        cnt += np.int64((v >= lo_v) & (v <= hi_v))
+                        below += np.int64(v < lo_v)
+                    use_band = below <= k1 and below + cnt > k2
+                if not use_band:
+                    below = 0
+                    cnt = m
+                    for i in range(m):
+                        sel[i] = abs(r[i])
+                kk = k1 - below
+                if cnt <= 16:  # insertion sort of a few values
+                    for i in range(1, cnt):
+                        v = sel[i]
+                        h = i - 1
+                        while h >= 0 and sel[h] > v:
+                            sel[h + 1] = sel[h]
+                            h -= 1
+                        sel[h + 1] = v
+                else:  # quickselect of index kk, branch-free (Lomuto) partitions
+                    left = 0
+                    right = cnt - 1
+                    while right > left:
+                        mid = (left + right) // 2  # median of three goes to sel[right]
+                        if sel[mid] < sel[left]:
+                            sel[mid], sel[left] = sel[left], sel[mid]
+                        if sel[right] < sel[left]:
+                            sel[right], sel[left] = sel[left], sel[right]
+                        if sel[mid] < sel[right]:
+                            sel[right], sel[mid] = sel[mid], sel[right]
+                        pivot = sel[right]
+                        store = left
+                        for i in range(left, right):
+                            v = sel[i]
+                            sel[i] = sel[store]
+                            sel[store] = v
+                            store += np.int64(v < pivot)
+                        sel[right] = sel[store]
+                        sel[store] = pivot
+                        if kk < store:
+                            right = store - 1
+                        elif kk == store:
+                            break
+                        elif store == left:  # the pivot is the minimum: gather its ties
+                            e = store + 1
+                            for i in range(store + 1, right + 1):
+                                v = sel[i]
+                                sel[i] = sel[e]
+                                sel[e] = v
+                                e += np.int64(v <= pivot)
+                            if kk < e:
+                                break
+                            left = e
+                        else:
+                            left = store + 1
+                lower = sel[kk]
+                if k2 != k1:  # even count: the next order statistic is the minimum above
+                    upper = sel[kk + 1]
+                    for i in range(kk + 2, cnt):
+                        upper = min(upper, sel[i])
+                    med = 0.5 * (lower + upper)
+                    s = (lower / mad_constant + upper / mad_constant) * 0.5
+                else:
+                    med = lower
+                    s = lower / mad_constant
+                if fits == 0:
+                    start_guess = med
+                    band = band_first
+                else:
+                    band = min(max(3.0 * abs(med - guess) / guess, band_min), band_max)
+                guess = med
+                if s == 0.0:  # more than half the residuals are exactly zero: exact fit
+                    converged = True
+                    break
+                # weights of the next fit; counts (they vectorize) of the standardized residuals
+                # that moved by more than the tolerance since the last iteration and of the
+                # weights that moved by more than refresh_change since the cross-products were
+                # formed
+                inv_s = 1.0 / s
+                moved = 0
+                stale = 0
+                wsum = 0.0
+                if norm_code == 0:
+                    cs = c * s
+                    for i in range(m):
+                        z = r[i] * inv_s
+                        moved += np.int64(abs(z - zp[i]) > tolerance)
+                        zp[i] = z
+                        wi = min(1.0, cs / abs(r[i]))
+                        stale += np.int64(abs(wi - wref[i]) > refresh_change)
+                        wt[i] = wi
+                        wr[i] = wi * r[i]
+                        wsum += wi
+                else:
+                    inv_sc = inv_s / c
+                    for i in range(m):
+                        z = r[i] * inv_s
+                        moved += np.int64(abs(z - zp[i]) > tolerance)
+                        zp[i] = z
+                        u = r[i] * inv_sc
+                        v = 1.0 - u * u
+                        wi = v * v if abs(u) <= 1.0 else 0.0
+                        stale += np.int64(abs(wi - wref[i]) > refresh_change)
+                        wt[i] = wi
+                        wr[i] = wi * r[i]
+                        wsum += wi
+                if fits > 0:
+                    if moved == 0:
+                        converged = True
+                        break
+                    if fits >= max_iterations:
+                        break
+                # weighted least squares in correction form, g += (Xc' W Xc)^-1 Xc' W r, with
+                # the Cholesky factor of the cross-products re-formed for the first fits and
+                # whenever a weight has moved by more than refresh_change since it was formed
+                if fits < exact_fits or stale > 0:
+                    for t in range(q):
+                        acc = 0.0
+                        for i in range(m):
+                            acc += wt[i] * gram_rows[t, i]
+                        At[t] = acc
+                    for i in range(m):
+                        wref[i] = wt[i]
+                    t = 0
+                    for k in range(p):
+                        for l in range(k, p):
+                            A[k, l] = At[t]
+                            A[l, k] = At[t]
+                            t += 1
+                    ok = True
+                    for k in range(p):
+                        d = A[k, k]
+                        for h in range(k):
+                            d -= L[k, h] * L[k, h]
+                        if not d > pivot_floor * A[k, k]:
+                            ok = False
+                            break
+                        d = math.sqrt(d)
+                        L[k, k] = d
+                        for l in range(k + 1, p):
+                            e = A[l, k]
+                            for h in range(k):
+                                e -= L[l, h] * L[k, h]
+                            L[l, k] = e / d
+                    if not ok:  # the weighted design lost rank: stop, keep the last fit
+                        break
+                k = 0  # Xc' W r, four columns per pass over the trials
+                while k + 4 <= p:
+                    a0 = 0.0
+                    a1 = 0.0
+                    a2 = 0.0
+                    a3 = 0.0
+                    for i in range(m):
+                        v = wr[i]
+                        a0 += v * xct[k, i]
+                        a1 += v * xct[k + 1, i]
+                        a2 += v * xct[k + 2, i]
+                        a3 += v * xct[k + 3, i]
+                    rhs[k] = a0
+                    rhs[k + 1] = a1
+                    rhs[k + 2] = a2
+                    rhs[k + 3] = a3
+                    k += 4
+                while k < p:
+                    acc = 0.0
+                    for i in range(m):
+                        acc += wr[i] * xct[k, i]
+                    rhs[k] = acc
+                    k += 1
+                for k in range(p):
+                    e = rhs[k]
+                    for h in range(k):
+                        e -= L[k, h] * rhs[h]
+                    rhs[k] = e / L[k, k]
+                for k in range(p - 1, -1, -1):
+                    e = rhs[k]
+                    for h in range(k + 1, p):
+                        e -= L[h, k] * rhs[h]
+                    rhs[k] = e / L[k, k]
+                for k in range(p):
+                    g[k] += rhs[k]
+                mean_w = wsum / m
+                fits += 1
+            # H1 covariance factor at the final residuals (z = 0 everywhere when s = 0)
+            inv_s = 1.0 / s if s > 0.0 else 0.0
+            sum_d = 0.0
+            sum_d2 = 0.0
+            sum_psi2 = 0.0
+            for i in range(m):
+                z = r[i] * inv_s
+                if norm_code == 0:
+                    inside = abs(z) <= c
+                    dv = 1.0 if inside else 0.0
+                    ps = z if inside else math.copysign(c, z)
+                else:
+                    u = z / c
+                    v = 1.0 - u * u
+                    inside = abs(u) <= 1.0
+                    dv = v * v - 4.0 * u * u * v if inside else 0.0
+                    ps = z * v * v if inside else 0.0
+                sum_d += dv
+                sum_d2 += dv * dv
+                sum_psi2 += ps * ps
+            mean_d = sum_d / m
+            var_d = max(sum_d2 / m - mean_d * mean_d, 0.0)
+            kf = 1.0 + p / m * var_d / (mean_d * mean_d)
+            factor_out[lo + j] = kf * kf * (sum_psi2 / (m - p) * s * s) / (mean_d * mean_d)
+            for k in range(p):
+                gamma_out[k, lo + j] = g[k]
+            scale_out[lo + j] = s
+            weight_out[lo + j] = mean_w
+            iter_out[lo + j] = fits
+            conv_out[lo + j] = converged
