@@ -89,10 +89,10 @@ def test_random_sign_flips_give_phipson_smyth_p():
     # Recompute b from our own draws, the t statistics coming from scipy.stats.ttest_1samp.
     signs, exhaustive = resamplings("sign-flip", n, permutations=m, seed=seed)
     assert not exhaustive and signs.shape == (m, n)
-    t_obs = abs(one_sample_t(x))
+    observed_t = abs(one_sample_t(x))
     t_null = np.abs(one_sample_t(signs * x[None, :], axis=1))
     # A relative tie tolerance far below the spacing of distinct t values.
-    b = int(np.sum(t_null >= t_obs * (1 - 1e-12)))
+    b = int(np.sum(t_null >= observed_t * (1 - 1e-12)))
     # Phipson & Smyth (2010): the observed data count once among m + 1.
     assert res.p_uncorrected[0] == (b + 1) / (m + 1)
     # One point: the max-statistic p is the same.
