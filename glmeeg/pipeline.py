@@ -167,6 +167,17 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
         if (k > 1 or m > 1) and t.alternative != "two-sided":
             raise ModelError(f"{where}: alternative {t.alternative!r} applies to t tests only; this "
                              "is an F test (use two-sided)")
+        if t.group_method != "glm":
+            from .group_robust import group_layout
+            if k > 1:
+                raise ModelError(f"{where}: group_method {t.group_method!r} takes one subject contrast")
+            if t.correction in PERMUTATION_METHODS:
+                raise ModelError(f"{where}: group_method {t.group_method!r} works with the corrections "
+                                 "none, bonferroni, holm and fdr in this version")
+            try:
+                group_layout(gm.matrix, gc.matrix, method=t.group_method)
+            except ModelError as e:
+                raise ModelError(f"{where}: {e}") from None
         scheme = None
         if t.correction in PERMUTATION_METHODS:
             from .inference.permutation import choose_resampling
@@ -310,8 +321,19 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
     """Run one test at the group level and apply its correction."""
     idx = [estimates.subjects.index(s) for s in test.subjects]
     Y = estimates.estimates[idx][:, estimates.rows[test.spec.name], :]
-    stats = group_test(Y, test.group_matrix.matrix, test.group_contrast.matrix,
-                       alternative=test.spec.alternative, confidence_level=test.spec.confidence_level)
+    if test.spec.group_method == "trimmed":
+        from .group_robust import trimmed_test
+        stats = trimmed_test(Y[:, 0], test.group_matrix.matrix, test.group_contrast.matrix,
+                             trim=0.2 if test.spec.trim is None else test.spec.trim,
+                             alternative=test.spec.alternative)
+    elif test.spec.group_method == "welch":
+        from .group_robust import welch_test
+        stats = welch_test(Y[:, 0], test.group_matrix.matrix, test.group_contrast.matrix,
+                           alternative=test.spec.alternative)
+    else:
+        stats = group_test(Y, test.group_matrix.matrix, test.group_contrast.matrix,
+                           alternative=test.spec.alternative, confidence_level=test.spec.confidence_level)
+    has_interval = bool(np.isfinite(stats.effect_size_low).any())
     correction = test.spec.correction_settings()
     alpha = test.spec.alpha
     notes = list(test.notes)
@@ -367,7 +389,8 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
                       effect_size_corrected=stats.effect_size_corrected,
                       effect_size_name=stats.effect_size_name,
                       effect_size_corrected_name=stats.effect_size_corrected_name,
-                      effect_size_low=stats.effect_size_low, effect_size_high=stats.effect_size_high,
+                      effect_size_low=stats.effect_size_low if has_interval else None,
+                      effect_size_high=stats.effect_size_high if has_interval else None,
                       confidence_level=stats.confidence_level, notes=tuple(notes), provenance=prov, **extra)
 
 

@@ -313,7 +313,9 @@ class TestResult(_Frozen):
     def __str__(self) -> str:
         f = self.findings()
         df = f"t({self.df[1]:g})" if self.kind == "t" else f"F({self.df[0]:g}, {self.df[1]:g})"
-        lines = [f"test {self.name}: {df}, {self.n_subjects} subjects, {self.correction.describe()}, "
+        method = {"trimmed": f", {100 * (0.2 if self.spec.trim is None else self.spec.trim):g} % trimmed means",
+                  "welch": ", Welch's unequal variances"}.get(self.spec.group_method, "")
+        lines = [f"test {self.name}: {df}{method}, {self.n_subjects} subjects, {self.correction.describe()}, "
                  f"alpha {self.alpha:g}, {self.alternative}",
                  f"  {f['n_significant']} of {f['n_points']} points significant"]
         if "peak" in f:

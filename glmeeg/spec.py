@@ -134,6 +134,9 @@ class TestSpec(_Strict):
     alpha: float = Field(0.05, gt=0, lt=1)
     alternative: Alternative = "two-sided"
     confidence_level: float = Field(0.95, gt=0, lt=1, description="level of the effect-size intervals")
+    group_method: Literal["glm", "trimmed", "welch"] = Field(
+        "glm", description="group GLM; trimmed means (one sample / Yuen); Welch's unequal variances")
+    trim: float | None = Field(None, ge=0, lt=0.5, description="share trimmed per tail (default 0.2)")
     permutations: int | None = Field(None, ge=1, le=10_000_000,
                                      description="resamplings for max / cluster / tfce (default 5000)")
     seed: int | None = Field(None, ge=0, le=2**63 - 1, description="seed of the resamplings")
@@ -149,6 +152,8 @@ class TestSpec(_Strict):
     def _keys_match_correction(self) -> "TestSpec":
         families = {"permutation": (_PERMUTATION_KEYS, ("max", "cluster", "tfce")),
                     "cluster": (_CLUSTER_KEYS, ("cluster",)), "tfce": (_TFCE_KEYS, ("tfce",))}
+        if self.trim is not None and self.group_method != "trimmed":
+            raise ValueError("trim applies to group_method = trimmed only")
         for keys, allowed in families.values():
             for key in keys:
                 if getattr(self, key) is not None and self.correction not in allowed:
