@@ -167,6 +167,14 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
         if (k > 1 or m > 1) and t.alternative != "two-sided":
             raise ModelError(f"{where}: alternative {t.alternative!r} applies to t tests only; this "
                              "is an F test (use two-sided)")
+        if t.bootstrap:
+            from .group_robust import group_layout
+            if k > 1:
+                raise ModelError(f"{where}: bootstrap intervals take one subject contrast")
+            try:
+                group_layout(gm.matrix, gc.matrix, method="bootstrap")
+            except ModelError as e:
+                raise ModelError(f"{where}: {e}") from None
         if t.group_method != "glm":
             from .group_robust import group_layout
             if k > 1:
@@ -334,10 +342,20 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
         stats = group_test(Y, test.group_matrix.matrix, test.group_contrast.matrix,
                            alternative=test.spec.alternative, confidence_level=test.spec.confidence_level)
     has_interval = bool(np.isfinite(stats.effect_size_low).any())
+    extra: dict = {}
+    if test.spec.bootstrap:
+        from .bootstrap import bootstrap_interval
+        from .group_robust import group_layout
+        groups, sign = group_layout(test.group_matrix.matrix, test.group_contrast.matrix, method="bootstrap")
+        trim = (0.2 if test.spec.trim is None else test.spec.trim) if test.spec.group_method == "trimmed" else 0.0
+        seed = test.spec.seed if test.spec.seed is not None else 0
+        boot = bootstrap_interval(Y[:, 0], groups=groups, sign=sign, trim=trim,
+                                  confidence_level=test.spec.confidence_level,
+                                  n_resamples=test.spec.bootstrap, method=test.spec.bootstrap_method, seed=seed)
+        extra.update(estimate_low=boot.low, estimate_high=boot.high)
     correction = test.spec.correction_settings()
     alpha = test.spec.alpha
     notes = list(test.notes)
-    extra: dict = {}
     if correction.method in PERMUTATION_METHODS:
         from .inference.permutation import permutation_test
 

@@ -124,10 +124,10 @@ _ARRAYS = ("estimate", "standard_error", "statistic", "p", "p_corrected", "signi
            "effect_size", "effect_size_corrected", "subject_contrast", "group_contrast")
 # Arrays present only for permutation-based corrections.
 _OPTIONAL_ARRAYS = ("p_permutation", "tfce", "cluster", "null_distribution", "effect_size_low",
-                    "effect_size_high")
+                    "effect_size_high", "estimate_low", "estimate_high")
 _MAPS = ("estimate", "standard_error", "statistic", "p", "p_corrected", "significant",
          "effect_size", "effect_size_corrected", "p_permutation", "tfce", "cluster",
-         "effect_size_low", "effect_size_high")
+         "effect_size_low", "effect_size_high", "estimate_low", "estimate_high")
 
 
 class Resampling(_Frozen):
@@ -177,6 +177,8 @@ class TestResult(_Frozen):
     effect_size_corrected_name: str
     effect_size_low: Array | None = None
     effect_size_high: Array | None = None
+    estimate_low: Array | None = None
+    estimate_high: Array | None = None
     confidence_level: float = 0.95
     p_permutation: Array | None = None
     tfce: Array | None = None
@@ -217,6 +219,9 @@ class TestResult(_Frozen):
         df = self.axes.point_labels()
         if self.kind == "t":
             df["estimate"] = self.estimate[0]
+            if self.estimate_low is not None:
+                df["estimate_low"] = self.estimate_low
+                df["estimate_high"] = self.estimate_high
             df["standard_error"] = self.standard_error
         else:
             df["estimate"] = np.nan

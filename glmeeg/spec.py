@@ -137,6 +137,9 @@ class TestSpec(_Strict):
     group_method: Literal["glm", "trimmed", "welch"] = Field(
         "glm", description="group GLM; trimmed means (one sample / Yuen); Welch's unequal variances")
     trim: float | None = Field(None, ge=0, lt=0.5, description="share trimmed per tail (default 0.2)")
+    bootstrap: int = Field(0, ge=0, le=1_000_000, description="bootstrap resamples for intervals of the "
+                           "group estimate (0: none; 100 at least)")
+    bootstrap_method: Literal["bca", "percentile"] = "bca"
     permutations: int | None = Field(None, ge=1, le=10_000_000,
                                      description="resamplings for max / cluster / tfce (default 5000)")
     seed: int | None = Field(None, ge=0, le=2**63 - 1, description="seed of the resamplings")
@@ -152,10 +155,14 @@ class TestSpec(_Strict):
     def _keys_match_correction(self) -> "TestSpec":
         families = {"permutation": (_PERMUTATION_KEYS, ("max", "cluster", "tfce")),
                     "cluster": (_CLUSTER_KEYS, ("cluster",)), "tfce": (_TFCE_KEYS, ("tfce",))}
+        if 0 < self.bootstrap < 100:
+            raise ValueError(f"bootstrap needs at least 100 resamples (or 0 for none); got {self.bootstrap}")
         if self.trim is not None and self.group_method != "trimmed":
             raise ValueError("trim applies to group_method = trimmed only")
         for keys, allowed in families.values():
             for key in keys:
+                if key == "seed" and self.bootstrap:
+                    continue  # the seed also drives the bootstrap
                 if getattr(self, key) is not None and self.correction not in allowed:
                     raise ValueError(f"{key} applies to correction = {' | '.join(allowed)}, not "
                                      f"{self.correction!r}")
@@ -169,6 +176,8 @@ class TestSpec(_Strict):
                  "threshold": self.cluster_threshold, "statistic": self.cluster_statistic,
                  "extent_exponent": self.tfce_extent_exponent,
                  "height_exponent": self.tfce_height_exponent}
+        if self.correction not in ("max", "cluster", "tfce"):
+            return correction_from_name(self.correction)  # the seed may belong to the bootstrap
         return correction_from_name(self.correction, **{k: v for k, v in given.items() if v is not None})
 
     @field_validator("name")
