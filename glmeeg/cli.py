@@ -100,11 +100,17 @@ def run(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
 
 @app.command()
 @_reports_errors
-def check(design: Annotated[Path, typer.Argument(help="Design file (TOML).")]) -> None:
+def check(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
+          data: Annotated[bool, typer.Option("--data", help="Also fit the subjects and report on the "
+                                             "assumptions: outlying trials and subjects, normality "
+                                             "of group-level residuals.")] = False) -> None:
     """Show what `run` would do (subjects, epochs, design columns, contrasts) without fitting."""
-    from .pipeline import plan_analysis
+    from .pipeline import check_assumptions, plan_analysis
 
-    typer.echo(plan_analysis(design).describe())
+    plan = plan_analysis(design)
+    typer.echo(plan.describe())
+    if data:
+        typer.echo(check_assumptions(plan))
     typer.echo("design OK")
 
 

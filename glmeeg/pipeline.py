@@ -444,3 +444,45 @@ def run_analysis(design: str | Path | AnalysisPlan, *,
     return RunResult(design=plan.spec.model_dump(mode="json"), subject_formula=plan.subject_design.formula,
                      subject_columns=plan.subject_design.column_names, subjects=est.summaries,
                      tests=tests, warnings=plan.warnings, provenance=prov)
+
+
+def check_assumptions(plan: AnalysisPlan) -> str:
+    """Fit the subjects and report on the assumptions of every test (``glmeeg check --data``).
+
+    Per subject: trials whose residual energy is far above the others' (artefacts). Per test:
+    skewness, kurtosis and D'Agostino-Pearson normality of the group-level residuals at every
+    point, the share of points where normality is rejected, outlying subjects, and suggestions
+    of robust options where they matter.
+    """
+    from .assumptions import group_checks, outlying_trials
+
+    st = plan.study
+    lines = ["assumption checks (they describe the data; they are not tests to pass):"]
+    flagged = 0
+    for s in st.subject_ids:
+        X = plan.subject_matrices[s]
+        epochs = st.subject_trials(s)["epoch"].to_numpy()[X.kept]
+        bad = outlying_trials(X.matrix, st.read_epochs(s, epochs))
+        if bad.size:
+            flagged += bad.size
+            lines.append(f"  subject {s}: {bad.size} outlying trial(s) (epochs "
+                         f"{', '.join(map(str, epochs[bad][:12]))}{' ...' if bad.size > 12 else ''})")
+    if flagged:
+        lines.append(f"  {flagged} outlying trials in all: consider [subject_model] robust = \"huber\" "
+                     "(or \"bisquare\"), or reject those epochs")
+    else:
+        lines.append("  no outlying trials")
+    est = fit_subjects(plan)
+    for t in plan.tests:
+        if t.subject_contrast.n_rows > 1:
+            lines.append(f"  test {t.spec.name}: joint test; residual checks are given for single contrasts")
+            continue
+        idx = [est.subjects.index(s) for s in t.subjects]
+        Y = est.estimates[idx][:, est.rows[t.spec.name].start, :]
+        g = group_checks(Y, t.group_matrix.matrix, t.subjects)
+        share = "n/a" if np.isnan(g.share_rejected) else f"{100 * g.share_rejected:.1f} %"
+        lines.append(f"  test {t.spec.name}: normality rejected at {share} of points; median |skewness| "
+                     f"{np.nanmedian(np.abs(g.skewness)):.2f}, median excess kurtosis "
+                     f"{np.nanmedian(g.excess_kurtosis):.2f}")
+        lines += [f"    {n}" for n in g.notes]
+    return "\n".join(lines)

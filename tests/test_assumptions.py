@@ -1,0 +1,53 @@
+"""Assumption checks: artefact trials, outlying subjects, residual normality."""
+
+import numpy as np
+import scipy.stats
+from typer.testing import CliRunner
+
+from conftest import write_study
+from glmeeg.assumptions import group_checks, outlying_trials, robust_z
+from glmeeg.cli import app
+
+
+def test_check_data_flags_a_planted_artefact_trial(tmp_path):
+    design = write_study(tmp_path / "s", n_subjects=6, n_trials=30, seed=12)
+    path = design.parent / "epochs" / "s03.npy"
+    y = np.load(path)
+    y[17] += 60.0          # one epoch with a large drift on every channel (an artefact)
+    np.save(path, y)
+    result = CliRunner().invoke(app, ["check", str(design), "--data"])
+    assert result.exit_code == 0, result.output
+    line = [ln for ln in result.stdout.splitlines() if "subject s03" in ln and "outlying trial" in ln]
+    assert line and "17" in line[0]
+    assert "robust" in result.stdout
+
+
+def test_outlying_trials_on_clean_data_are_rare():
+    rng = np.random.default_rng(13)
+    X = np.column_stack([np.ones(200), rng.normal(size=200)])
+    y = rng.normal(size=(200, 300))
+    # Residual energy of clean trials is a scaled chi-square with 300 df: nearly symmetric in
+    # log; |robust z| > 3.5 should almost never happen (normal tail 2e-4 per trial).
+    assert outlying_trials(X, y).size <= 1
+
+
+def test_group_checks_normality_p_is_scipy_normaltest_of_residuals():
+    rng = np.random.default_rng(14)
+    y = rng.standard_t(3, size=(30, 20))
+    checks = group_checks(y, np.ones((30, 1)), tuple(f"s{i}" for i in range(30)))
+    # D'Agostino-Pearson omnibus test (scipy.stats.normaltest) on the mean-centred values.
+    ref = scipy.stats.normaltest(y - y.mean(axis=0), axis=0).pvalue
+    np.testing.assert_allclose(checks.normality_p, ref, rtol=1e-10)
+    np.testing.assert_allclose(checks.skewness, scipy.stats.skew(y, axis=0, bias=False), rtol=1e-10)
+
+
+def test_an_outlying_subject_is_named():
+    rng = np.random.default_rng(15)
+    y = rng.normal(size=(20, 50))
+    y[4] += 8.0
+    checks = group_checks(y, np.ones((20, 1)), tuple(f"s{i:02d}" for i in range(20)))
+    assert checks.outlying_subjects == ("s04",)
+
+
+def test_robust_z_of_a_constant_is_zero():
+    assert np.all(robust_z(np.ones((5, 2))) == 0)
