@@ -31,14 +31,6 @@ import time
 import numpy as np
 
 
-def best_of(fn, repeats: int) -> float:
-    best = float("inf")
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return best
-
 
 def simulate(rng: np.random.Generator, n: int, channels: int, times: int):
     """Design, planted betas and float32 epochs (n, channels * times) with artefact trials."""

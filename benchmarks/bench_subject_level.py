@@ -21,18 +21,10 @@ Run: ``python benchmarks/bench_subject_level.py``
 from __future__ import annotations
 
 import argparse
-import time
 
 import numpy as np
 
-
-def best_of(fn, repeats: int) -> float:
-    best = float("inf")
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return best
+from timing import best_of
 
 
 def main() -> None:

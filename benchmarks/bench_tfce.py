@@ -30,14 +30,7 @@ import time
 
 import numpy as np
 
-
-def best_of(fn, repeats: int) -> float:
-    best = float("inf")
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return best
+from timing import best_of
 
 
 def grid_by_time_graph(side: int, n_times: int):

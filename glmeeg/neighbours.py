@@ -8,7 +8,6 @@ explicit neighbour table, else from the sensors' positions (a triangulation of t
 
 from __future__ import annotations
 
-import re
 from dataclasses import dataclass, field
 
 import numpy as np

@@ -20,7 +20,6 @@ import json
 import os
 import platform
 import shutil
-import sys
 import tempfile
 import zipfile
 from datetime import datetime, timezone

@@ -17,7 +17,7 @@ import re
 import string
 import tomllib
 from pathlib import Path
-from typing import Annotated, Literal, Union
+from typing import Literal, Union
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 

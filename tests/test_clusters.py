@@ -12,7 +12,6 @@ import math
 
 import numpy as np
 import pytest
-import scipy.sparse as sp
 from numpy.testing import assert_allclose, assert_array_equal
 from scipy import ndimage
 from scipy.sparse.csgraph import connected_components
