@@ -462,7 +462,7 @@ def check_assumptions(plan: AnalysisPlan) -> str:
     for s in st.subject_ids:
         X = plan.subject_matrices[s]
         epochs = st.subject_trials(s)["epoch"].to_numpy()[X.kept]
-        bad = outlying_trials(X.matrix, st.read_epochs(s, epochs))
+        bad = outlying_trials(X.matrix, st.read_epochs(s, epochs), n_channels=len(st.axes.channels))
         if bad.size:
             flagged += bad.size
             lines.append(f"  subject {s}: {bad.size} outlying trial(s) (epochs "

@@ -302,6 +302,7 @@ def _subject(seed_seq: np.random.SeedSequence, role: str, n_trials: int, mixing:
     epochs[bad] += _artefacts(rng, n_bad, 50.0, 150.0, neighbours)
 
     table = pd.DataFrame({
+        "artefact": np.isin(kept, bad),
         "trial": kept + 1,
         "epoch": kept,
         "urgency": np.asarray(URGENCY_LEVELS, dtype=object)[urgency[kept]],
@@ -346,7 +347,9 @@ def write_demo_study(directory: str | Path, *, n_subjects: int = 28, n_trials: i
     Files: ``trials.csv`` (subject, trial, epoch, urgency, loudness_db, response_time; a few
     response times are empty), ``subjects.csv`` (subject, role, age), ``channels.tsv`` (name,
     x, y, z on the unit sphere), ``epochs/<subject>.npy`` (float32, trials x 32 channels x 250
-    samples, µV, 250 Hz from -0.2 s), ``design.toml``. The planted truth is :data:`DEMO_TRUTH`.
+    samples, µV, 250 Hz from -0.2 s), ``design.toml``. The planted truth is :data:`DEMO_TRUTH`;
+    ``planted_artefacts.csv`` (subject, epoch) lists the kept trials that carry a large
+    artefact (ground truth for checks; the analysis never reads it).
 
     Examples
     --------
@@ -386,6 +389,8 @@ def write_demo_study(directory: str | Path, *, n_subjects: int = 28, n_trials: i
         np.save(root / "epochs" / f"{sid}.npy", epochs, allow_pickle=False)
 
     trials = pd.concat(tables, ignore_index=True)
+    # Ground truth of the simulation, kept apart from the data the analysis reads.
+    trials.loc[trials["artefact"], ["subject", "epoch"]].to_csv(root / "planted_artefacts.csv", index=False)
     trials = trials[["subject", "trial", "epoch", "urgency", "loudness_db", "response_time"]]
     trials.to_csv(root / "trials.csv", index=False)
     pd.DataFrame({"subject": ids, "role": roles, "age": ages}).to_csv(root / "subjects.csv", index=False)
