@@ -5,7 +5,9 @@ cluster-forming threshold, with one corrected p for the whole set. For point-wis
 (TFCE, max statistic) the same description is given to each connected *region* of significant
 points of one sign, with the smallest corrected p in it. Either way the description says that an
 effect exists somewhere in the set; its first and last times are not estimates of an effect's
-onset or offset (Sassenhagen & Draschkow, 2019).
+onset or offset (Sassenhagen & Draschkow, 2019). A significant cluster's effect size is that of
+the subjects' estimates averaged over its points; since the cluster was selected in the same
+data, that size is biased upwards.
 """
 
 from __future__ import annotations
@@ -46,6 +48,9 @@ class Cluster(BaseModel):
     peak_statistic: float
     p: float
     significant: bool
+    effect_size: float | None = None
+    effect_size_low: float | None = None
+    effect_size_high: float | None = None
 
 
 def describe_clusters(labels: np.ndarray, statistic: np.ndarray, axes: Axes, p_values: dict[int, float],
@@ -109,7 +114,7 @@ def clusters_frame(clusters: tuple[Cluster, ...], *, frequencies: bool) -> pd.Da
     cols += ["channels", "peak_channel", "peak_time"]
     if frequencies:
         cols += ["peak_frequency"]
-    cols += ["peak_statistic", "p", "significant"]
+    cols += ["peak_statistic", "p", "significant", "effect_size", "effect_size_low", "effect_size_high"]
     rows = []
     for c in clusters:
         d = c.model_dump()

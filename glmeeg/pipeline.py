@@ -324,6 +324,27 @@ def _trial_weights(plan: AnalysisPlan, trials: pd.DataFrame, X: DesignMatrix, su
     return w
 
 
+def _cluster_effect_sizes(clusters, labels: np.ndarray, Y: np.ndarray, test: TestPlan):
+    """Effect size (with its interval) of each significant cluster's average.
+
+    Each subject's contrast estimates are averaged over the cluster's points and the group test
+    is run on those averages. The cluster was found in the same data, so the size is biased
+    upwards (selection): a description of the cluster, not an unbiased estimate.
+    """
+    out = []
+    for c in clusters:
+        if not c.significant or test.spec.group_method != "glm":
+            out.append(c)
+            continue
+        avg = Y[:, :, labels == c.id].mean(axis=2, keepdims=True)
+        g = group_test(avg, test.group_matrix.matrix, test.group_contrast.matrix,
+                       confidence_level=test.spec.confidence_level)
+        out.append(c.model_copy(update={"effect_size": float(g.effect_size[0]),
+                                        "effect_size_low": float(g.effect_size_low[0]),
+                                        "effect_size_high": float(g.effect_size_high[0])}))
+    return tuple(out)
+
+
 def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, *,
                prov: Provenance, memory_limit: int = 512 * 2**20) -> TestResult:
     """Run one test at the group level and apply its correction."""
@@ -374,8 +395,9 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
                 p_by_id[cid] = float(np.nanmin(p_corr[labels == cid]))
         if labels is not None:
             extra["cluster"] = labels
-            extra["clusters"] = describe_clusters(labels, np.nan_to_num(stats.statistic), plan.study.axes,
-                                                  p_by_id, alpha=alpha, kind=kind)
+            clusters = describe_clusters(labels, np.nan_to_num(stats.statistic), plan.study.axes,
+                                         p_by_id, alpha=alpha, kind=kind)
+            extra["clusters"] = _cluster_effect_sizes(clusters, labels, Y, test)
         extra.update(p_permutation=perm.p_uncorrected, null_distribution=perm.null_distribution,
                      resampling=Resampling(scheme=perm.scheme, n_resamplings=perm.n_resamplings,
                                            exhaustive=perm.exhaustive, seed=perm.seed,

@@ -349,9 +349,12 @@ class TestResult(_Frozen):
                 span = f"{1000 * c.first_time:.0f} to {1000 * c.last_time:.0f} ms"
                 if c.lowest_frequency is not None:
                     span += f", {c.lowest_frequency:g}-{c.highest_frequency:g} Hz"
+                size = ("" if c.effect_size is None else
+                        f"; average {self.effect_size_name} = {c.effect_size:.2f} "
+                        f"[{c.effect_size_low:.2f}, {c.effect_size_high:.2f}] (selected: biased upwards)")
                 lines.append(f"    #{c.id} {c.sign}, {span}, {c.extent} points, p = {c.p:.4g}; peak "
                              f"{c.peak_channel} {1000 * c.peak_time:.0f} ms ({self.kind} = "
-                             f"{c.peak_statistic:.2f}); channels {' '.join(c.channels)}")
+                             f"{c.peak_statistic:.2f}); channels {' '.join(c.channels)}{size}")
             if len(sig) > 20:
                 lines.append(f"    ... and {len(sig) - 20} more")
         if f["n_nonfinite"]:

@@ -78,3 +78,30 @@ def test_size_labels_follow_cohens_conventions():
     # 0.2 / 0.5 / 0.8: small / medium / large (Cohen 1988; common practice).
     assert size_label(np.array([0.1, -0.2, 0.49, 0.5, -0.79, 0.8, np.nan])).tolist() == [
         "negligible", "small", "small", "medium", "medium", "large", ""]
+
+
+def test_cluster_effect_size_is_the_test_of_the_cluster_average(tmp_path):
+    from conftest import write_study
+
+    tests = '''
+[[test]]
+name = "cl"
+subject_contrast = "condition[T.b]"
+correction = "cluster"
+permutations = 200
+'''
+    design = write_study(tmp_path / "s", effect=1.5, seed=3, n_subjects=14, n_channels=8,
+                         n_times=20, tests=tests)
+    plan = glmeeg.plan_analysis(design)
+    run = glmeeg.run_analysis(plan)
+    t = run.test("cl")
+    sig = [c for c in t.clusters if c.significant]
+    assert sig
+    est = glmeeg.fit_subjects(plan).estimates[:, 0, :]
+    for c in sig:
+        avg = est[:, t.cluster == c.id].mean(axis=1)
+        # dz of the cluster average: mean / SD (Cohen 1988) with the noncentral-t interval.
+        assert c.effect_size == pytest.approx(avg.mean() / avg.std(ddof=1), rel=1e-10)
+        lo, hi = noncentrality_interval_t(np.array([scipy.stats.ttest_1samp(avg, 0).statistic]), 13)
+        assert c.effect_size_low == pytest.approx(lo[0] / np.sqrt(14), rel=1e-8)
+        assert c.effect_size_high == pytest.approx(hi[0] / np.sqrt(14), rel=1e-8)

@@ -373,7 +373,8 @@ permutations = 200
 seed = 3
 """
 CLUSTER_COLUMNS = ["id", "kind", "sign", "mass", "extent", "first_time", "last_time", "channels",
-                   "peak_channel", "peak_time", "peak_statistic", "p", "significant"]
+                   "peak_channel", "peak_time", "peak_statistic", "p", "significant",
+                   "effect_size", "effect_size_low", "effect_size_high"]
 
 
 def invoke(*args):
