@@ -21,7 +21,7 @@ from .effect_sizes import noncentrality_interval_f, noncentrality_interval_t
 from .errors import ModelError
 from .subject_level import fit_ols
 
-__all__ = ["GroupStatistics", "group_test", "p_values", "hedges_factor"]
+__all__ = ["GroupStatistics", "group_arrays", "group_test", "p_values", "hedges_factor"]
 
 Alternative = Literal["two-sided", "greater", "less"]
 ALTERNATIVES = ("two-sided", "greater", "less")
@@ -98,6 +98,34 @@ def p_values(statistic: np.ndarray, kind: str, df: tuple[float, float], *,
         return t.cdf(statistic, df[1])
 
 
+def group_arrays(estimates, design, contrast) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Validated float64 arrays of a group test: ``Y`` (n, k, P), ``G`` (n, q), ``L`` (m, q).
+
+    Raises
+    ------
+    ModelError
+        Mismatched shapes, no residual df, or several subject contrasts with several group
+        contrasts.
+    """
+    Y = np.asarray(estimates, dtype=np.float64)
+    if Y.ndim == 2:
+        Y = Y[:, None, :]
+    G = np.asarray(design, dtype=np.float64)
+    L = np.atleast_2d(np.asarray(contrast, dtype=np.float64))
+    n, k, _ = Y.shape
+    q, m = G.shape[1], L.shape[0]
+    if G.shape[0] != n:
+        raise ModelError(f"group design has {G.shape[0]} rows for {n} subjects")
+    if L.shape[1] != q:
+        raise ModelError(f"group contrast has {L.shape[1]} weights for {q} group design columns")
+    if n - q < 1:
+        raise ModelError(f"{n} subjects for {q} group design columns: at least {q + 1} are needed")
+    if k > 1 and m > 1:
+        raise ModelError("a joint test over several subject contrasts takes one group contrast; "
+                         f"got {m} group contrasts")
+    return Y, G, L
+
+
 def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, *,
                alternative: Alternative = "two-sided", confidence_level: float = 0.95) -> GroupStatistics:
     """Test a group contrast of subjects' contrast estimates at every point.
@@ -164,24 +192,11 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
         raise ModelError(f"confidence_level must be between 0 and 1; got {confidence_level!r}")
     if alternative not in ALTERNATIVES:
         raise ModelError(f"alternative must be one of {', '.join(ALTERNATIVES)}; got {alternative!r}")
-    Y = np.asarray(estimates, dtype=np.float64)
-    if Y.ndim == 2:
-        Y = Y[:, None, :]
-    G = np.asarray(design, dtype=np.float64)
-    L = np.atleast_2d(np.asarray(contrast, dtype=np.float64))
+    Y, G, L = group_arrays(estimates, design, contrast)
     n, k, P = Y.shape
     q = G.shape[1]
     m = L.shape[0]
-    if G.shape[0] != n:
-        raise ModelError(f"group design has {G.shape[0]} rows for {n} subjects")
-    if L.shape[1] != q:
-        raise ModelError(f"group contrast has {L.shape[1]} weights for {q} group design columns")
     dfe = n - q
-    if dfe < 1:
-        raise ModelError(f"{n} subjects for {q} group design columns: at least {q + 1} are needed")
-    if k > 1 and m > 1:
-        raise ModelError("a joint test over several subject contrasts takes one group contrast; "
-                         f"got {m} group contrasts")
     if (k > 1 or m > 1) and alternative != "two-sided":
         raise ModelError(f"alternative {alternative!r} applies to t tests only; an F test is "
                          "two-sided (upper-tailed in F)")

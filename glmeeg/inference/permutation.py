@@ -50,6 +50,7 @@ import scipy.linalg
 import scipy.stats
 
 from ..errors import ModelError
+from ..group_level import group_arrays
 from ..subject_level import _conditioning
 from .corrections import TFCE, ClusterMass, MaxStatistic
 
@@ -313,11 +314,7 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
     statistics (cluster) or of positive and negative TFCE (tfce) in each resampling, so one
     null distribution controls the error over both tails. F tests are upper-tailed.
     """
-    Y = np.asarray(estimates, dtype=np.float64)
-    if Y.ndim == 2:
-        Y = Y[:, None, :]
-    G = np.asarray(design, dtype=np.float64)
-    L = np.atleast_2d(np.asarray(contrast, dtype=np.float64))
+    Y, G, L = group_arrays(estimates, design, contrast)
     n, k, P = Y.shape
     if correction.method in ("cluster", "tfce") and graph is None:
         raise ModelError(f"correction '{correction.method}' needs the neighbour graph of the points")
