@@ -28,12 +28,15 @@ import scipy.linalg
 
 from .errors import ModelError
 
-__all__ = ["RobustFit", "fit_robust", "NORMS"]
+__all__ = ["RobustFit", "fit_robust", "NORMS", "CONVERGENCE_RULES"]
 
 # Default tuning constants: 95 % asymptotic efficiency at the normal distribution for a
 # location/regression M-estimator (Huber 1.345; bisquare 4.685) - Holland & Welsch (1977).
 NORMS = {"huber": 1.345, "bisquare": 4.685}
 _NORM_CODES = {"huber": 0, "bisquare": 1}
+# Stopping rules (see fit_robust): the largest change of a standardized residual, or the
+# relative change of the residual vector as a whole.
+CONVERGENCE_RULES = {"standardized-residuals": 0, "relative-residuals": 1}
 # Normal quantile at 3/4: MAD / this is a consistent estimate of sigma at the normal.
 _MAD_CONSTANT = 0.6744897501960817
 # Points per block: the block's trials are copied once, as float64, into a (block x trials)
@@ -83,8 +86,8 @@ class RobustFit:
         ``(n_points,)`` int, weighted least-squares steps taken at each point after the
         least-squares start.
     converged : numpy.ndarray
-        ``(n_points,)`` bool: no standardized residual moved by more than ``tolerance`` at the
-        last iteration, or the scale was zero (more than half the residuals exactly zero: an exact
+        ``(n_points,)`` bool: the stopping rule ``convergence`` was met at the last iteration,
+        or the scale was zero (more than half the residuals exactly zero: an exact
         fit, nothing to reweight). False where ``max_iterations`` was reached, where the weighted
         design lost rank, or where the data hold NaN or infinity (those points' results are NaN).
     df_resid : int
@@ -94,9 +97,13 @@ class RobustFit:
     tuning : float
         Tuning constant of the norm, in units of ``scale``.
     tolerance : float
-        Convergence tolerance on the change of the standardized residuals.
+        Convergence tolerance of the stopping rule.
     max_iterations : int
         Most weighted least-squares steps allowed at a point.
+    convergence : str
+        The stopping rule: ``"standardized-residuals"`` or ``"relative-residuals"``.
+    scale_constant : float
+        The divisor of the median absolute residual in the scale estimate.
     """
 
     betas: np.ndarray
@@ -111,6 +118,8 @@ class RobustFit:
     tuning: float
     tolerance: float
     max_iterations: int
+    convergence: str = "standardized-residuals"
+    scale_constant: float = _MAD_CONSTANT
 
     def contrast(self, c: np.ndarray) -> np.ndarray:
         """Contrast estimates ``c @ betas``: ``(rows, n_points)`` for a ``(rows, n_columns)`` c."""
@@ -140,10 +149,18 @@ def _conditioning(X: np.ndarray, a: np.ndarray) -> np.ndarray:
     return M / norms
 
 
-def _validate(X, Y, norm, tuning, max_iterations, tolerance, weights, scale):
+def _validate(X, Y, norm, tuning, max_iterations, tolerance, weights, scale, convergence,
+              scale_constant):
     """Check every argument of :func:`fit_robust` once; return the normalised ones."""
     if norm not in NORMS:
         raise ModelError(f"norm={norm!r} is not known; expected one of {sorted(NORMS)}")
+    if convergence not in CONVERGENCE_RULES:
+        raise ModelError(f"convergence={convergence!r} is not known; expected one of "
+                         f"{sorted(CONVERGENCE_RULES)}")
+    if isinstance(scale_constant, bool) or not isinstance(scale_constant, numbers.Real) \
+            or not math.isfinite(scale_constant) or not 0.5 <= scale_constant <= 1.0:
+        raise ModelError(f"scale_constant={scale_constant!r}: must be a number in [0.5, 1] "
+                         "(0.6745 for a consistent scale at the normal)")
     if tuning is None:
         tuning = NORMS[norm]
     if isinstance(tuning, bool) or not isinstance(tuning, numbers.Real) \
@@ -190,12 +207,14 @@ def _validate(X, Y, norm, tuning, max_iterations, tolerance, weights, scale):
     if rows.size <= p:
         raise ModelError(f"{rows.size} trials with positive weight for {p} design columns: "
                          "no residual degrees of freedom")
-    return X, Y, float(tuning), int(max_iterations), float(tolerance), a, rows
+    return X, Y, float(tuning), int(max_iterations), float(tolerance), a, rows, float(scale_constant)
 
 
 def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: float | None = None,
                max_iterations: int = 50, tolerance: float = 1e-8,
-               weights: np.ndarray | None = None, scale: str = "mad") -> RobustFit:
+               convergence: str = "standardized-residuals",
+               weights: np.ndarray | None = None, scale: str = "mad",
+               scale_constant: float = _MAD_CONSTANT) -> RobustFit:
     """Fit ``Y = X @ B + E`` by M-estimation (Huber or bisquare) at every column of ``Y``.
 
     Parameters
@@ -214,15 +233,26 @@ def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: flo
     max_iterations : int, default 50
         Most weighted least-squares steps at a point after the least-squares start.
     tolerance : float, default 1e-8
-        A point has converged when no standardized residual ``r_i / scale`` changes by more than
-        this from one iteration to the next.
+        Tolerance of the stopping rule ``convergence``.
+    convergence : {"standardized-residuals", "relative-residuals"}
+        When a point has converged. ``"standardized-residuals"`` (default): no standardized
+        residual ``r_i / scale`` changed by more than ``tolerance`` at the last step.
+        ``"relative-residuals"``: the residual vector changed by at most ``tolerance`` relative
+        to its length, ``||r_old - r_new|| / ||r_old|| <= tolerance``, the rule of Venables &
+        Ripley's ``rlm`` [4]_ (used there with ``tolerance = 1e-4`` and ``max_iterations = 20``;
+        with those settings and ``scale_constant = 0.6745`` the fit reproduces published values
+        computed that way).
     weights : numpy.ndarray, optional
         ``(n_rows,)`` non-negative prior weights of the trials, read as inverse variances: the
         model is fitted to ``sqrt(a_i) y_i`` on ``sqrt(a_i) x_i``. Trials with weight 0 are left
         out (they count neither in the fit nor in the median). Default: all 1.
     scale : {"mad"}, default "mad"
         Robust scale re-estimated at every iteration: the median absolute residual divided by
-        0.6745 (the normal quantile at 3/4).
+        ``scale_constant``.
+    scale_constant : float, default 0.6744897501960817
+        The normal quantile at 3/4, which makes the scale consistent for the error SD at the
+        normal. Software that rounds it to 0.6745 gives betas that differ in the fifth digit;
+        pass 0.6745 to reproduce such results.
 
     Returns
     -------
@@ -232,7 +262,8 @@ def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: flo
     ------
     ModelError
         An unknown ``norm`` or ``scale``; ``tuning`` not > 0; ``max_iterations`` < 1; a negative
-        ``tolerance``; negative or non-finite ``weights``; mismatched shapes; a rank-deficient
+        ``tolerance``; an unknown ``convergence``; ``scale_constant`` outside [0.5, 1];
+        negative or non-finite ``weights``; mismatched shapes; a rank-deficient
         design; no residual degrees of freedom.
 
     Notes
@@ -259,7 +290,9 @@ def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: flo
     where the cross-product is well conditioned), by Cholesky in float64; the betas are
     ``M g``. The first three steps form the cross-product of their own weights (they are the
     plain IRLS iterates, statsmodels' to rounding); later steps reuse it until some weight has
-    moved by more than 0.05 since it was formed. The fixed point solves ``Xc' W r = 0``, the
+    moved by more than 0.05 since it was formed (with ``convergence="relative-residuals"``
+    every step forms its own, since a rule that stops early returns an iterate, which depends
+    on the path). The fixed point solves ``Xc' W r = 0``, the
     M-estimating equations, whichever matrix is used, and near it the weights have settled, so
     the reuse changes neither the solution nor, in practice, the number of iterations.
 
@@ -280,6 +313,8 @@ def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: flo
        813-827.
     .. [3] Beaton, A. E., & Tukey, J. W. (1974). The fitting of power series, meaning
        polynomials, illustrated on band-spectroscopic data. Technometrics, 16(2), 147-185.
+    .. [4] Venables, W. N., & Ripley, B. D. (2002). Modern Applied Statistics with S (4th ed.),
+       section 6.5. Springer.
 
     Examples
     --------
@@ -293,8 +328,8 @@ def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: flo
     >>> bool(np.all(np.abs(fit.betas - [[2.0], [3.0]]) < 0.6)), bool(fit.converged.all())
     (True, True)
     """
-    X, Y, tuning, max_iterations, tolerance, a, rows = _validate(
-        X, Y, norm, tuning, max_iterations, tolerance, weights, scale)
+    X, Y, tuning, max_iterations, tolerance, a, rows, scale_constant = _validate(
+        X, Y, norm, tuning, max_iterations, tolerance, weights, scale, convergence, scale_constant)
     p = X.shape[1]
     Xu = X[rows]
     au = a[rows]
@@ -316,8 +351,11 @@ def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: flo
                iterations=np.zeros(n_points, np.int64),
                converged=np.zeros(n_points, bool))
     settings = (rows.astype(np.int64), root_w, np.ascontiguousarray(Xc.T), gram_rows, ols_map,
-                _NORM_CODES[norm], tuning, max_iterations, tolerance, _EXACT_FITS,
-                _REFRESH_CHANGE, _MAD_CONSTANT, _PIVOT_FLOOR, _BAND_START, _BAND_FIRST,
+                _NORM_CODES[norm], tuning, max_iterations, tolerance, CONVERGENCE_RULES[convergence],
+                # a rule that stops early returns an iterate, not the fixed point: then every
+                # step is a plain IRLS step, so the path is the textbook one
+                _EXACT_FITS if convergence == "standardized-residuals" else max_iterations + 1,
+                _REFRESH_CHANGE, scale_constant, _PIVOT_FLOOR, _BAND_START, _BAND_FIRST,
                 min(_BAND_MAX, _BAND_TRIALS / (0.86 * rows.size)), _BAND_MAX)
     _run_blocks(Y, settings, out)
     out["betas"] = M @ out["betas"]
@@ -325,7 +363,8 @@ def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: flo
     for value in out.values():
         value.setflags(write=False)
     return RobustFit(**out, df_resid=int(rows.size - p), norm=norm, tuning=tuning,
-                     tolerance=tolerance, max_iterations=max_iterations)
+                     tolerance=tolerance, max_iterations=max_iterations, convergence=convergence,
+                     scale_constant=scale_constant)
 
 
 def _run_blocks(Y, settings, out):
@@ -368,7 +407,8 @@ def _compiled_kernel():
 
 
 def _irls_kernel(Y, start, stop, rows, root_w, xct, gram_rows, ols_map, norm_code, c,
-                 max_iterations, tolerance, exact_fits, refresh_change, mad_constant, pivot_floor,
+                 max_iterations, tolerance, conv_code, exact_fits, refresh_change, mad_constant,
+                 pivot_floor,
                  band_start, band_first, band_min, band_max, block, gamma_out, scale_out,
                  factor_out, weight_out, iter_out, conv_out):  # pragma: no cover - compiled
     """IRLS at the points ``start:stop`` of ``Y`` (see :func:`fit_robust`), written into the
@@ -394,6 +434,7 @@ def _irls_kernel(Y, start, stop, rows, root_w, xct, gram_rows, ols_map, norm_cod
     k1 = (m - 1) // 2
     k2 = m // 2
     r = np.empty(m)
+    rprev = np.empty(m)
     zp = np.empty(m)
     sel = np.empty(m)
     wt = np.empty(m)
@@ -450,6 +491,18 @@ def _irls_kernel(Y, start, stop, rows, root_w, xct, gram_rows, ols_map, norm_cod
                     for i in range(m):
                         r[i] -= xct[k, i] * gk
                     k += 1
+                relative_done = False
+                if conv_code == 1:  # ||r_old - r|| <= tolerance ||r_old||
+                    if fits > 0:
+                        dd = 0.0
+                        oo = 0.0
+                        for i in range(m):
+                            d = rprev[i] - r[i]
+                            dd += d * d
+                            oo += rprev[i] * rprev[i]
+                        relative_done = math.sqrt(dd / max(1e-20, oo)) <= tolerance
+                    for i in range(m):
+                        rprev[i] = r[i]
                 # median of |r|: branch-free compaction of a band around the guess
                 below = 0
                 cnt = 0
@@ -565,7 +618,7 @@ def _irls_kernel(Y, start, stop, rows, root_w, xct, gram_rows, ols_map, norm_cod
                         wr[i] = wi * r[i]
                         wsum += wi
                 if fits > 0:
-                    if moved == 0:
+                    if (conv_code == 0 and moved == 0) or relative_done:
                         converged = True
                         break
                     if fits >= max_iterations:

@@ -107,11 +107,17 @@ class SubjectModelSpec(_ModelSpec):
                                         description="tuning constant; default 1.345 (huber), 4.685 (bisquare)")
     robust_max_iterations: int | None = Field(None, ge=1, le=10_000)
     robust_tolerance: float | None = Field(None, gt=0, lt=1)
+    robust_convergence: Literal["standardized-residuals", "relative-residuals"] | None = Field(
+        None, description="stopping rule of the iterations (default standardized-residuals)")
+    robust_scale_constant: float | None = Field(
+        None, ge=0.5, le=1, allow_inf_nan=False,
+        description="divisor of the median absolute residual (default 0.67449, the normal quantile)")
     trial_weights: str | None = Field(None, description="trials-table column of non-negative trial weights")
 
     @model_validator(mode="after")
     def _robust_keys(self) -> "SubjectModelSpec":
-        for key in ("robust_tuning", "robust_max_iterations", "robust_tolerance"):
+        for key in ("robust_tuning", "robust_max_iterations", "robust_tolerance",
+                    "robust_convergence", "robust_scale_constant"):
             if getattr(self, key) is not None and self.robust is None:
                 raise ValueError(f"{key} applies only with robust = huber | bisquare")
         return self

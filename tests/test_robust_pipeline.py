@@ -27,15 +27,21 @@ def _subject_data(design, subject):
     return rows, y.reshape(len(rows), -1).astype(np.float64)
 
 
-def test_robust_subject_model_matches_fit_robust_on_each_subject(tmp_path):
-    design = _with(write_study(tmp_path / "s", seed=8, n_subjects=6, effect=1.0), 'robust = "bisquare"')
+@pytest.mark.parametrize("extra, options", [
+    ("", {}),
+    ('robust_convergence = "relative-residuals"\nrobust_tolerance = 1e-4\nrobust_scale_constant = 0.6745',
+     dict(convergence="relative-residuals", tolerance=1e-4, scale_constant=0.6745)),
+])
+def test_robust_subject_model_matches_fit_robust_on_each_subject(tmp_path, extra, options):
+    design = _with(write_study(tmp_path / "s", seed=8, n_subjects=6, effect=1.0),
+                   'robust = "bisquare"\n' + extra)
     run = glmeeg.run_analysis(design)
     plan = glmeeg.plan_analysis(design)
     est = glmeeg.fit_subjects(plan)
     c = plan.tests[0].subject_contrast.matrix
     for i, s in enumerate(plan.study.subject_ids):
         _, y = _subject_data(design, s)
-        direct = fit_robust(plan.subject_matrices[s].matrix, y, norm="bisquare")
+        direct = fit_robust(plan.subject_matrices[s].matrix, y, norm="bisquare", **options)
         # The pipeline must hand the same rows and design to the robust fit (same arithmetic).
         np.testing.assert_allclose(est.estimates[i], c @ direct.betas, rtol=1e-12, atol=1e-12)
     assert all(s.robust_iterations_max is not None for s in run.subjects)
@@ -60,6 +66,9 @@ def test_trial_weights_with_least_squares_equal_statsmodels_wls(tmp_path):
     ('robust_tuning = 2.0', "robust_tuning applies only with robust"),
     ('robust = "huber"\nrobust_tuning = -1.0', "subject_model.robust_tuning"),
     ('trial_weights = "no_such_column"', "no_such_column"),
+    ('robust = "huber"\nrobust_convergence = "coefficients"', "subject_model.robust_convergence"),
+    ('robust = "huber"\nrobust_scale_constant = 1.4826', "subject_model.robust_scale_constant"),
+    ('robust_convergence = "relative-residuals"', "robust_convergence applies only with robust"),
 ])
 def test_bad_robust_settings_are_one_line_errors(tmp_path, extra, fragment):
     design = _with(write_study(tmp_path / "s", n_subjects=4), extra)
