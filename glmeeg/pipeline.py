@@ -281,7 +281,10 @@ def fit_subjects(plan: AnalysisPlan, *, progress: Callable[[str, int, int], None
             from .robust import fit_robust
             options = {k: v for k, v in (("tuning", sm.robust_tuning),
                                           ("max_iterations", sm.robust_max_iterations),
-                                          ("tolerance", sm.robust_tolerance)) if v is not None}
+                                          ("tolerance", sm.robust_tolerance),
+                                          ("convergence", sm.robust_convergence),
+                                          ("scale_constant", sm.robust_scale_constant))
+                       if v is not None}
             fit = fit_robust(X.matrix, Y, norm=sm.robust, weights=weights, **options)
             robust_info = {"robust_iterations_max": int(fit.iterations.max()),
                            "robust_unconverged_points": int((~fit.converged).sum())}
