@@ -229,6 +229,11 @@ _SPATIAL_LENGTH = 0.6      # length scale of exp(-d^2 / l^2) on the unit sphere
 _NUGGET = 0.05             # independent share per channel (keeps the covariance well conditioned)
 _SLOPE_SD = 0.2            # between-volunteer SD of effect sizes, relative to the mean
 _REJECT_MAX = 0.15         # up to 15 % of epochs rejected (left out of trials.csv)
+# Blinks the rejection let through: in 3-12 % of a volunteer's kept trials, 80-200 µV at the
+# frontal pole, 200-400 ms long at a random time, falling off with distance from the eyes.
+_BLINK_SHARE = (0.03, 0.12)
+_BLINK_UV = (80.0, 200.0)
+_BLINK_SPREAD = 0.8        # exp(-d / spread), d the chord distance from the frontal pole
 
 
 def _noise_mixing() -> np.ndarray:
@@ -245,6 +250,26 @@ def _evoked() -> np.ndarray:
     """Condition-independent N1 (about -5 µV, 100 ms) and P2 (about +6 µV, 190 ms)."""
     w = _spatial_weights("Cz", DEMO_TRUTH.evoked.plateau_deg, DEMO_TRUTH.evoked.radius_deg)
     return np.outer(w, -5.0 * _hann_window(0.05, 0.15) + 6.0 * _hann_window(0.13, 0.26))
+
+
+def _blink_pattern() -> np.ndarray:
+    """Share of a blink's frontal-pole amplitude seen at each channel (1 at the pole)."""
+    pos = np.array([standard_position(c) for c in CHANNELS])
+    pole = standard_position("Fp1") + standard_position("Fp2")
+    pole = pole / np.linalg.norm(pole)
+    return np.exp(-np.linalg.norm(pos - pole, axis=1) / _BLINK_SPREAD)
+
+
+def _blinks(rng: np.random.Generator, n: int) -> np.ndarray:
+    """``n`` epochs holding one blink each: a positive Hann bump of 200-400 ms at a random time."""
+    out = np.zeros((n, len(CHANNELS), N_SAMPLES))
+    pattern = _blink_pattern()
+    t_end = TIME_START + N_SAMPLES / SAMPLING_RATE
+    for k in range(n):
+        length = rng.uniform(0.2, 0.4)
+        start = rng.uniform(TIME_START - 0.5 * length, t_end - 0.5 * length)
+        out[k] = rng.uniform(*_BLINK_UV) * np.outer(pattern, _hann_window(start, start + length))
+    return out
 
 
 def _artefacts(rng: np.random.Generator, n: int, low: float, high: float,
@@ -300,9 +325,14 @@ def _subject(seed_seq: np.random.SeedSequence, role: str, n_trials: int, mixing:
     bad = rng.choice(kept, size=n_bad, replace=False)
     epochs[rejected] += _artefacts(rng, n_rejected, 150.0, 300.0, neighbours)
     epochs[bad] += _artefacts(rng, n_bad, 50.0, 150.0, neighbours)
+    # Blinks come from a stream of their own, so adding them left every other value unchanged.
+    blink_rng = np.random.default_rng(seed_seq.spawn(1)[0])
+    n_blink = int(round(blink_rng.uniform(*_BLINK_SHARE) * len(kept)))
+    blinked = blink_rng.choice(kept, size=n_blink, replace=False)
+    epochs[blinked] += _blinks(blink_rng, n_blink)
 
     table = pd.DataFrame({
-        "artefact": np.isin(kept, bad),
+        "artefact": np.isin(kept, bad) | np.isin(kept, blinked),
         "trial": kept + 1,
         "epoch": kept,
         "urgency": np.asarray(URGENCY_LEVELS, dtype=object)[urgency[kept]],
@@ -349,7 +379,9 @@ def write_demo_study(directory: str | Path, *, n_subjects: int = 28, n_trials: i
     x, y, z on the unit sphere), ``epochs/<subject>.npy`` (float32, trials x 32 channels x 250
     samples, µV, 250 Hz from -0.2 s), ``design.toml``. The planted truth is :data:`DEMO_TRUTH`;
     ``planted_artefacts.csv`` (subject, epoch) lists the kept trials that carry a large
-    artefact (ground truth for checks; the analysis never reads it).
+    artefact: a blink (3-12 % of a volunteer's kept trials, 80-200 µV at the frontal pole,
+    falling off over the scalp) or a spike or drift on 1-4 channels (1-3 %); ground truth for
+    checks, never read by the analysis.
 
     Examples
     --------

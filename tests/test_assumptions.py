@@ -54,8 +54,9 @@ def test_robust_z_of_a_constant_is_zero():
 
 
 def test_check_finds_the_demo_artefact_trials(tmp_path):
-    # The demo plants 50-150 µV drifts or spikes on 1-4 channels in 1-3 % of the kept trials
-    # (glmeeg.simulate) and lists them in planted_artefacts.csv, which the analysis never reads.
+    # The demo plants 50-150 µV drifts or spikes on 1-4 channels in 1-3 % of the kept trials and
+    # blinks in 3-12 % (glmeeg.simulate), and lists them in planted_artefacts.csv, which the
+    # analysis never reads.
     import pandas as pd
 
     import glmeeg

@@ -86,3 +86,27 @@ def test_negative_trial_weights_are_refused(tmp_path):
     trials.to_csv(design.parent / "trials.csv", index=False)
     result = CliRunner().invoke(app, ["run", str(design), "--out", str(tmp_path / "out")])
     assert result.exit_code == 2 and "non-negative trial weights" in result.stderr
+
+
+def test_robust_fit_recovers_the_demo_urgency_effect_better_than_least_squares(tmp_path):
+    # The demo keeps blinks (3-12 % of kept trials, 80-200 µV at the frontal pole) and a few
+    # spikes and drifts in the trials the rejection let through (glmeeg.simulate). Truth: the
+    # planted high-vs-low urgency map, 2 steps x 1.5 µV x the planted pattern (DEMO_TRUTH).
+    from glmeeg.simulate import DEMO_TRUTH, write_demo_study
+
+    design = write_demo_study(tmp_path / "demo", n_subjects=10, seed=20261201)
+    header, tests = design.read_text().split("[group_model]", 1)
+    truth = 2 * DEMO_TRUTH.urgency.per_unit_uv * DEMO_TRUTH.urgency.pattern().ravel()
+    rmse = {}
+    for norm in (None, "huber", "bisquare"):
+        if norm is not None:
+            design.write_text(header + f'robust = "{norm}"\n\n[group_model]' + tests)
+        plan = glmeeg.plan_analysis(design)
+        est = glmeeg.fit_subjects(plan)
+        mean_map = est.estimates[:, est.rows["urgency-high-vs-low"].start].mean(axis=0)
+        rmse[norm] = float(np.sqrt(np.mean((mean_map - truth) ** 2)))
+    # Both M-estimators land closer to the planted map than least squares (seed fixed: with
+    # this seed OLS 0.59, Huber 0.53, bisquare 0.52 µV); the margin asked, 5 %, is well above
+    # the ~2.5 % RMSE that M-estimation gives up on clean normal data (95 % efficiency).
+    assert rmse["huber"] < 0.95 * rmse[None], rmse
+    assert rmse["bisquare"] < 0.95 * rmse[None], rmse
