@@ -85,7 +85,12 @@ group_method = "trimmed"
     run = glmeeg.run_analysis(design)
     t = run.test("yuen")
     assert t.effect_size_low is None and "trimmed means" in str(t)
-    bad = design.read_text().replace('group_method = "trimmed"', 'group_method = "trimmed"\ncorrection = "tfce"')
-    design.write_text(bad)
+    # With a permutation correction the two groups are permuted (a one-line error for
+    # sign-flipping; tests/test_group_robust_permutation.py has the rest).
+    tfce = design.read_text().replace('group_method = "trimmed"', 'group_method = "trimmed"\ncorrection = "tfce"')
+    design.write_text(tfce)
     result = CliRunner().invoke(app, ["check", str(design)])
-    assert result.exit_code == 2 and "group_method 'trimmed'" in result.stderr
+    assert result.exit_code == 0, result.output
+    design.write_text(tfce.replace('correction = "tfce"', 'correction = "tfce"\nresampling = "sign-flip"'))
+    result = CliRunner().invoke(app, ["check", str(design)])
+    assert result.exit_code == 2 and "resampling 'sign-flip' does not suit" in result.stderr

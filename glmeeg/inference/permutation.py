@@ -26,6 +26,9 @@ block of :data:`BLOCK` resamplings, so any resampling can be regenerated alone a
 depend on batch size or on how the work is split. Statistics are computed by a kernel that sums
 every value in a fixed order, so they are bitwise identical for any batch size.
 
+The robust group statistics (trimmed-mean t, Yuen's and Welch's t) are resampled by the engines
+of :mod:`glmeeg.inference.robust_resampling`, chosen by ``permutation_test``'s ``method``.
+
 References
 ----------
 .. [1] Freedman, D., & Lane, D. (1983). A nonstochastic interpretation of reported significance
@@ -204,6 +207,8 @@ class _Engine:
             Qz, _ = np.linalg.qr(Z)
             Y2 = Y2 - Qz @ (Qz.T @ Y2)
         self.R = np.ascontiguousarray(Y2, dtype=np.float64)      # (n, k*P)
+        # Memory of one resampled map and its intermediates (sets the batch size).
+        self.bytes_per_map = P * 8 * (self.qt.shape[0] * k + 6)
         Rk = self.R.reshape(n, k, P)
         if k == 1:
             self.rz2 = np.einsum("np,np->p", Rk[:, 0], Rk[:, 0])
@@ -254,6 +259,31 @@ class _Engine:
             return scale * t2
 
 
+def _robust_engine(Y: np.ndarray, G: np.ndarray, L: np.ndarray, scheme: Scheme, *, kind: str,
+                   method: str, trim: float):
+    """The trimmed-t or Welch engine of a one-sample or two-group test (checked here)."""
+    from ..group_robust import GROUP_METHODS, group_layout
+
+    if method not in GROUP_METHODS:
+        raise ModelError(f"method must be one of {', '.join(GROUP_METHODS)}; got {method!r}")
+    if kind != "t" or Y.shape[1] != 1:
+        raise ModelError(f"group_method {method!r} takes one subject contrast and gives a t statistic")
+    groups, sign = group_layout(G, L, method=method)
+    if method == "trimmed" and not 0 <= trim < 0.5:
+        raise ModelError(f"trim must be in [0, 0.5); got {trim!r}")
+    from .robust_resampling import (TrimmedSignFlipEngine, WelchPermutationEngine,
+                                    YuenPermutationEngine)
+    if groups is None:
+        engine = TrimmedSignFlipEngine(Y[:, 0], trim=trim, sign=sign)
+    elif method == "trimmed":
+        engine = YuenPermutationEngine(Y[:, 0], groups, trim=trim, sign=sign)
+    else:
+        engine = WelchPermutationEngine(Y[:, 0], groups, sign=sign)
+    # choose_resampling gives sign-flip for the one-sample layout, permute for two groups.
+    assert engine.scheme == scheme, (engine.scheme, scheme)
+    return engine
+
+
 def _oriented(stat: np.ndarray, kind: str, alternative: str) -> np.ndarray:
     """Statistic turned so that larger means more extreme for the tested tail(s)."""
     if kind == "F" or alternative == "greater":
@@ -275,6 +305,7 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
                      alternative: str = "two-sided",
                      correction: MaxStatistic | ClusterMass | TFCE,
                      graph: tuple[np.ndarray, np.ndarray] | None = None,
+                     method: Literal["glm", "trimmed", "welch"] = "glm", trim: float = 0.2,
                      memory_limit: int = 512 * 2**20) -> PermutationResult:
     """Family-wise corrected p-values at every point by sign-flipping or permutation.
 
@@ -287,15 +318,27 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
     contrast : numpy.ndarray
         ``(m, q)`` group contrast.
     kind : {"t", "F"}
-        The statistic (as returned by :func:`glmeeg.group_test`).
+        The statistic (as returned by :func:`glmeeg.group_test`, or ``"t"`` for the robust
+        methods).
     df : tuple of float
-        Its degrees of freedom (for the default cluster-forming threshold).
+        Its degrees of freedom (for the default cluster-forming threshold). For Yuen's and
+        Welch's tests, whose df differ by point, pass the median df (what
+        :func:`glmeeg.group_robust.trimmed_test` and :func:`~glmeeg.group_robust.welch_test`
+        report): the threshold is then one |t| for every point and every resampling.
     alternative : {"two-sided", "greater", "less"}
     correction : MaxStatistic, ClusterMass or TFCE
         The correction and its settings (resamplings, seed, scheme, threshold, exponents).
     graph : tuple of numpy.ndarray, optional
         ``(indptr, indices)`` of the points' neighbour graph (CSR); required for cluster and
         TFCE corrections.
+    method : {"glm", "trimmed", "welch"}, default "glm"
+        The statistic resampled: the group GLM's t or F (Freedman-Lane), the trimmed-mean t
+        (one sample: Tukey-McLaughlin, under sign-flipping; two groups: Yuen, under
+        permutation) or Welch's t (two groups, under permutation); see
+        :mod:`glmeeg.inference.robust_resampling`. The robust methods take the layouts of
+        :func:`glmeeg.group_robust.group_layout`.
+    trim : float, default 0.2
+        Share trimmed from each tail (``method="trimmed"`` only).
     memory_limit : int, default 512 MiB
         Bound on the memory of one batch of resampled maps.
 
@@ -306,21 +349,34 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
     Raises
     ------
     ModelError
-        A requested scheme that cannot test the contrast, or a missing graph.
+        A requested scheme that cannot test the contrast, a missing graph, or a design that
+        the robust method does not support.
 
     Notes
     -----
     Two-sided t tests use the maximum of |t| (max), of positive and negative cluster
     statistics (cluster) or of positive and negative TFCE (tfce) in each resampling, so one
     null distribution controls the error over both tails. F tests are upper-tailed.
+
+    The robust statistics are permuted studentized, which keeps Welch's test valid
+    asymptotically with unequal group variances (Janssen, 1997); sign-flipping a trimmed mean
+    assumes each subject's value is symmetric about 0 under the null hypothesis.
+
+    References
+    ----------
+    .. [1] Janssen, A. (1997). Studentized permutation tests for non-i.i.d. hypotheses and the
+       generalized Behrens-Fisher problem. Statistics & Probability Letters, 36(1), 9-21.
     """
     Y, G, L = group_arrays(estimates, design, contrast)
     n, k, P = Y.shape
     if correction.method in ("cluster", "tfce") and graph is None:
         raise ModelError(f"correction '{correction.method}' needs the neighbour graph of the points")
     scheme = choose_resampling(G, L, requested=correction.resampling)
+    if method == "glm":
+        engine = _Engine(Y, G, L, scheme)
+    else:
+        engine = _robust_engine(Y, G, L, scheme, kind=kind, method=method, trim=trim)
     rows, exhaustive = resamplings(scheme, n, permutations=correction.permutations, seed=correction.seed)
-    engine = _Engine(Y, G, L, scheme)
     identity = (np.ones((1, n), dtype=np.int8) if scheme == "sign-flip"
                 else np.arange(n, dtype=np.int32)[None, :])
     observed = engine.statistics(identity)[0]
@@ -355,7 +411,7 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
 
     from ..kernels import scan_maps
 
-    per_map = P * 8 * (engine.qt.shape[0] * k + 6)
+    per_map = engine.bytes_per_map
     # Small batches keep the maps in cache; results do not depend on the batch size.
     batch = int(max(1, min(rows.shape[0], _MAX_BATCH, memory_limit // max(per_map, 1))))
     null = np.empty(rows.shape[0])
