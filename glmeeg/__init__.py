@@ -17,6 +17,7 @@ from .results import RunResult, TestResult, load_result, load_run, write_run
 from .spec import DesignSpec, load_design
 from .study import Study, read_study
 from .robust import RobustFit, fit_robust
+from .simulated_power import SimulatedPower, simulate_power
 from .subject_level import OLSFit, fit_ols
 
 __all__ = ["__version__", "Axes", "GlmeegError", "DesignFileError", "StudyError", "FormulaError",
@@ -25,4 +26,4 @@ __all__ = ["__version__", "Axes", "GlmeegError", "DesignFileError", "StudyError"
            "Holm", "FalseDiscoveryRate", "adjust_p", "AnalysisPlan", "plan_analysis",
            "fit_subjects", "test_group", "run_analysis", "TestResult", "RunResult",
            "load_result", "load_run", "write_run", "solve_power", "power_curve", "PowerSolution",
-           "fit_robust", "RobustFit"]
+           "fit_robust", "RobustFit", "simulate_power", "SimulatedPower"]

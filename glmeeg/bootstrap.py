@@ -24,7 +24,7 @@ import scipy.stats
 
 from .errors import ModelError
 
-__all__ = ["BootstrapInterval", "bootstrap_interval"]
+__all__ = ["BootstrapInterval", "bootstrap_interval", "group_estimate"]
 
 _BLOCK_BYTES = 64 * 2**20
 
@@ -47,6 +47,17 @@ def _estimate(Y: np.ndarray, groups: np.ndarray | None, trim: float) -> np.ndarr
     if groups is None:
         return loc(Y)
     return loc(Y[groups]) - loc(Y[~groups])
+
+
+def group_estimate(estimates: np.ndarray, *, groups: np.ndarray | None = None, sign: float = 1.0,
+                   trim: float = 0.0) -> np.ndarray:
+    """The estimate that :func:`bootstrap_interval` resamples, at every point.
+
+    The mean (or ``trim`` trimmed mean) of the subjects' estimates, or the difference of the
+    two groups' means (first minus second, ``groups`` marking the first), times ``sign``.
+    """
+    Y = np.asarray(estimates, dtype=np.float64)
+    return sign * _estimate(Y, None if groups is None else np.asarray(groups, dtype=bool), trim)
 
 
 def bootstrap_interval(estimates: np.ndarray, *, groups: np.ndarray | None = None, sign: float = 1.0,

@@ -189,9 +189,13 @@ def demo(folder: Annotated[Path, typer.Argument(help="Folder for the demo study 
 _POWER_OPTIONS = {"effect_size": "--effect-size", "n": "--n", "alpha": "--alpha", "power": "--power",
                   "design": "--design", "alternative": "--alternative",
                   "df_numerator": "--df-numerator", "groups": "--groups", "n_values": "--curve"}
+# simulate_power's keywords, as the options of `glmeeg power --from`.
+_SIMULATION_OPTIONS = {"n": "--n", "simulations": "--simulations", "effect_scale": "--effect-scale",
+                       "permutations": "--permutations", "correction": "--correction", "alpha": "--alpha",
+                       "seed": "--seed", "graph": "--neighbours", "result": "--from"}
 
 
-def _parse_curve(text: str) -> list[float]:
+def _parse_curve(text: str, option: str = "--curve") -> list[float]:
     from .errors import GlmeegError
 
     try:
@@ -199,34 +203,58 @@ def _parse_curve(text: str) -> list[float]:
     except ValueError:
         values = []
     if not values:
-        raise GlmeegError(f"--curve: expected comma-separated sample sizes such as 16,24,32, got {text!r}")
+        raise GlmeegError(f"{option}: expected comma-separated sample sizes such as 16,24,32, got {text!r}")
     return [int(v) if v.is_integer() else v for v in values]
 
 
-_POWER_HELP = ("Solve the missing one of effect size, n, power (or alpha) of a t or F test.\n\n"
+def _one_n(text: str | None):
+    """--n of the parametric calculation: one number (checked by solve_power)."""
+    from .errors import GlmeegError
+
+    if text is None:
+        return None
+    try:
+        value = float(text)
+    except ValueError:
+        hint = " (a list of sizes goes with --from; see also --curve)" if "," in text else ""
+        raise GlmeegError(f"--n: expected a whole number of participants, got {text!r}{hint}") from None
+    return int(value) if value.is_integer() else value
+
+
+_POWER_HELP = ("Solve the missing one of effect size, n, power (or alpha) of a t or F test; or, with "
+               "--from, simulate the power of a saved test's real design.\n\n"
                "Leave out exactly one of --effect-size, --n and --power, and it is solved; --alpha "
                "is 0.05 unless given. To solve alpha, give the other three and --solve alpha. The "
                "numbers come from the exact noncentral t or F distribution (Cohen, 1988) and hold "
-               "for one test at --alpha: a correction over many points lowers the effective alpha.")
+               "for one test at --alpha: a correction over many points lowers the effective alpha.\n\n"
+               "With --from RESULTS/TEST (a saved test's folder) and --n 12,16,24,32, new studies of "
+               "each n are simulated from the test's effect map and its subjects' noise maps and "
+               "analysed with the same group test and correction; the share that detect the effect "
+               "(any significant point; a significant point in the test's significant region) is "
+               "the power, with its Monte-Carlo error (glmeeg.simulated_power.simulate_power).")
 
 
 @app.command("power", help=_POWER_HELP)
 @_reports_errors
 def power_command(
-        design: Annotated[str, typer.Option("--design", help="one-sample | paired | two-sample | f.")],
+        design: Annotated[Optional[str], typer.Option("--design", help="one-sample | paired | "
+                          "two-sample | f (not with --from).")] = None,
         effect_size: Annotated[Optional[float], typer.Option("--effect-size", help="Cohen's d "
                                "(one-sample, two-sample), dz (paired) or f (F test), >= 0, in the "
                                "direction of --alternative.")] = None,
-        n: Annotated[Optional[int], typer.Option("--n", help="Participants: per group for "
-                     "two-sample (equal groups), in total otherwise.")] = None,
+        n: Annotated[Optional[str], typer.Option("--n", help="Participants: per group for "
+                     "two-sample (equal groups), in total otherwise. With --from: the sizes to "
+                     "simulate, comma-separated (per group for designs with groups).")] = None,
         target_power: Annotated[Optional[float], typer.Option("--power", help="Power, in (0, 1).")] = None,
         alpha: Annotated[Optional[float], typer.Option("--alpha", help="Significance level of one "
-                         "test, in (0, 1); 0.05 unless solved with --solve alpha.")] = None,
+                         "test, in (0, 1); 0.05 unless solved with --solve alpha. With --from: "
+                         "default the saved test's.")] = None,
         solve: Annotated[Optional[str], typer.Option("--solve", help="Quantity to solve: n | "
                          "effect-size | power | alpha. Optional: inferred when exactly one of "
                          "--effect-size, --n, --power is left out; needed only for alpha.")] = None,
-        alternative: Annotated[str, typer.Option("--alternative", help="two-sided | greater | less "
-                               "(t designs; F tests are two-sided).")] = "two-sided",
+        alternative: Annotated[Optional[str], typer.Option("--alternative", help="two-sided | "
+                               "greater | less (t designs; F tests are two-sided). Default "
+                               "two-sided.")] = None,
         df_numerator: Annotated[Optional[int], typer.Option("--df-numerator", help="F: numerator "
                                 "df (k - 1 for a one-way ANOVA of k groups).")] = None,
         groups: Annotated[Optional[int], typer.Option("--groups", help="F: parameters of the full "
@@ -234,13 +262,57 @@ def power_command(
                           "groups. Default: --df-numerator + 1.")] = None,
         curve: Annotated[Optional[str], typer.Option("--curve", help="Also print the power at "
                          "these sample sizes, e.g. 16,24,32.")] = None,
+        from_result: Annotated[Optional[Path], typer.Option("--from", help="Simulate from this saved "
+                               "test (a test's folder in a run's output, RESULTS/TEST).")] = None,
+        simulations: Annotated[Optional[int], typer.Option("--simulations", help="With --from: "
+                               "simulated studies per n (default 200).")] = None,
+        correction: Annotated[Optional[str], typer.Option("--correction", help="With --from: none | "
+                              "bonferroni | holm | fdr | max | cluster | tfce; default the test's own "
+                              "(with its settings).")] = None,
+        permutations: Annotated[Optional[int], typer.Option("--permutations", help="With --from: "
+                                "resamplings per simulated study for max / cluster / tfce (default "
+                                "500).")] = None,
+        effect_scale: Annotated[Optional[float], typer.Option("--effect-scale", help="With --from: "
+                                "factor on the test's observed effect, > 0 (default 1; below 1 "
+                                "allows for a pilot effect inflated by selection).")] = None,
+        seed: Annotated[Optional[int], typer.Option("--seed", help="With --from: seed of the "
+                        "simulation (default 0).")] = None,
+        neighbours: Annotated[Optional[Path], typer.Option("--neighbours", help="With --from, cluster "
+                              "and tfce: neighbour table (CSV: channel, neighbour; written by glmeeg "
+                              "neighbours DESIGN --out FILE); default: from the 10-10 channel names.")] = None,
+        csv: Annotated[Optional[Path], typer.Option("--csv", help="With --from: also write the "
+                       "table (n, total_n, criterion, detections, simulations, probability, "
+                       "standard_error, low, high) to this CSV file.")] = None,
         as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False) -> None:
-    """Power and sample size of a t or F test (see ``glmeeg.power.solve_power``)."""
+    """Power and sample size of a t or F test (see ``glmeeg.power.solve_power``), or simulated
+    power of a saved test (``glmeeg.simulated_power.simulate_power``)."""
     import json
 
     from .errors import GlmeegError
     from .power import power_curve, solve_power
 
+    if from_result is not None:
+        parametric = {"--design": design, "--effect-size": effect_size, "--power": target_power,
+                      "--solve": solve, "--alternative": alternative, "--df-numerator": df_numerator,
+                      "--groups": groups, "--curve": curve}
+        for option, value in parametric.items():
+            if value is not None:
+                raise GlmeegError(f"{option}: applies to the parametric calculation, not with --from "
+                                  "(simulated power)")
+        _simulated_power(from_result, n=n, alpha=alpha, simulations=simulations, correction=correction,
+                         permutations=permutations, effect_scale=effect_scale, seed=seed,
+                         neighbours=neighbours, csv=csv, as_json=as_json)
+        return
+    simulation = {"--simulations": simulations, "--correction": correction, "--permutations": permutations,
+                  "--effect-scale": effect_scale, "--seed": seed, "--neighbours": neighbours, "--csv": csv}
+    for option, value in simulation.items():
+        if value is not None:
+            raise GlmeegError(f"{option}: applies with --from RESULT (simulated power) only")
+    if design is None:
+        raise GlmeegError("--design: required: one of one-sample, paired, two-sample, f (or --from "
+                          "RESULT for simulated power)")
+    alternative = "two-sided" if alternative is None else alternative
+    n = _one_n(n)
     given = {"effect-size": effect_size, "n": n, "power": target_power}
     if solve is not None:
         if solve not in ("n", "effect-size", "power", "alpha"):
@@ -292,6 +364,95 @@ def power_command(
         typer.echo(f"power at other sample sizes (n{per}; effect size {solution.effect_size:.4g}, "
                    f"alpha {solution.alpha:.4g}):")
         typer.echo(table.to_string(index=False, float_format=lambda x: f"{x:.4f}"))
+
+
+def _simulated_power(from_result: Path, *, n: str | None, alpha, simulations, correction, permutations,
+                     effect_scale, seed, neighbours: Path | None, csv: Path | None, as_json: bool) -> None:
+    """``glmeeg power --from``: simulated power of a saved test."""
+    import json
+    import os
+
+    from .errors import GlmeegError
+    from .inference.corrections import PERMUTATION_METHODS, correction_from_name
+    from .results import load_result
+
+    if (from_result / "run.json").is_file() and not (from_result / "result.npz").is_file():
+        tests = sorted(p.name for p in from_result.iterdir() if (p / "result.npz").is_file())
+        example = f", e.g. {from_result / tests[0]}" if tests else ""
+        raise GlmeegError(f"--from: {from_result} is a run folder; give one test's folder{example}")
+    result = load_result(from_result)
+    if n is None:
+        raise GlmeegError("--n: give the sample sizes to simulate, e.g. --n 16,24,32")
+    sizes = _parse_curve(n, "--n")
+    settings = result.correction
+    if correction is not None and correction != result.correction.method:
+        try:
+            settings = correction_from_name(correction)
+        except ValueError as e:
+            raise GlmeegError(f"--correction: {e}") from None
+    if permutations is not None and settings.method not in PERMUTATION_METHODS:
+        raise GlmeegError(f"--permutations: applies to the max, cluster and tfce corrections; this "
+                          f"simulation uses '{settings.method}'")
+    graph = None
+    if neighbours is not None:
+        if settings.method not in ("cluster", "tfce"):
+            raise GlmeegError(f"--neighbours: applies to the cluster and tfce corrections; this "
+                              f"simulation uses '{settings.method}'")
+        from .neighbours import neighbours_from_table
+        from .study import read_neighbour_table
+
+        table = read_neighbour_table(neighbours, label=str(neighbours))
+        graph = neighbours_from_table(result.axes.channels, table, label=str(neighbours))
+    if csv is not None:
+        # Checked before simulating: a wrong --csv should not cost minutes.
+        parent = csv.absolute().parent
+        if csv.is_dir():
+            raise GlmeegError(f"--csv: {csv} is a folder; expected a file name")
+        if not parent.is_dir():
+            raise GlmeegError(f"--csv: {csv} cannot be written, folder {parent} does not exist")
+        if not os.access(parent, os.W_OK | os.X_OK):
+            raise GlmeegError(f"--csv: {csv} cannot be written, no permission to write in {parent}")
+    options = {k: v for k, v in (("simulations", simulations), ("permutations", permutations),
+                                 ("effect_scale", effect_scale), ("seed", seed), ("alpha", alpha))
+               if v is not None}
+    from .simulated_power import simulate_power
+
+    try:
+        sim = simulate_power(result, n=sizes, correction=settings, graph=graph,
+                             progress=_simulation_progress(), **options)
+    except GlmeegError as e:
+        _close_progress()
+        name, sep, rest = str(e).partition(": ")
+        if sep and name in _SIMULATION_OPTIONS:
+            raise GlmeegError(f"{_SIMULATION_OPTIONS[name]}: {rest}") from None
+        raise
+    _close_progress()
+    if csv is not None:
+        tmp = csv.with_name(f".{csv.name}.partial")
+        try:
+            sim.to_frame().to_csv(tmp, index=False, float_format="%.10g")
+            tmp.replace(csv)
+        except OSError as e:
+            tmp.unlink(missing_ok=True)
+            raise GlmeegError(f"--csv: {csv} cannot be written ({e.strerror})") from None
+    if as_json:
+        typer.echo(json.dumps(sim.model_dump(mode="json")))
+        return
+    typer.echo(str(sim))
+    if csv is not None:
+        typer.echo(f"table written to {csv}")
+
+
+def _simulation_progress():
+    """A progress line on a terminal (nothing otherwise)."""
+    if not sys.stderr.isatty():
+        return None
+
+    def show(n: int, done: int, total: int) -> None:
+        line = f"simulating n = {n}: {done}/{total}"
+        typer.echo("\r" + line, err=True, nl=False)
+        _open_progress[0] = len(line)
+    return show
 
 
 def main() -> None:  # console-script entry point

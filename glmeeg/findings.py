@@ -51,6 +51,9 @@ class Cluster(BaseModel):
     effect_size: float | None = None
     effect_size_low: float | None = None
     effect_size_high: float | None = None
+    estimate: float | None = None
+    estimate_low: float | None = None
+    estimate_high: float | None = None
 
 
 def describe_clusters(labels: np.ndarray, statistic: np.ndarray, axes: Axes, p_values: dict[int, float],
@@ -114,7 +117,8 @@ def clusters_frame(clusters: tuple[Cluster, ...], *, frequencies: bool) -> pd.Da
     cols += ["channels", "peak_channel", "peak_time"]
     if frequencies:
         cols += ["peak_frequency"]
-    cols += ["peak_statistic", "p", "significant", "effect_size", "effect_size_low", "effect_size_high"]
+    cols += ["peak_statistic", "p", "significant", "effect_size", "effect_size_low", "effect_size_high",
+             "estimate", "estimate_low", "estimate_high"]
     rows = []
     for c in clusters:
         d = c.model_dump()

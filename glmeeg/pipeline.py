@@ -179,9 +179,6 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
             from .group_robust import group_layout
             if k > 1:
                 raise ModelError(f"{where}: group_method {t.group_method!r} takes one subject contrast")
-            if t.correction in PERMUTATION_METHODS:
-                raise ModelError(f"{where}: group_method {t.group_method!r} works with the corrections "
-                                 "none, bonferroni, holm and fdr in this version")
             try:
                 group_layout(gm.matrix, gc.matrix, method=t.group_method)
             except ModelError as e:
@@ -348,6 +345,57 @@ def _cluster_effect_sizes(clusters, labels: np.ndarray, Y: np.ndarray, test: Tes
     return tuple(out)
 
 
+def _bootstrap_settings(test: TestPlan) -> dict:
+    """Keyword arguments of :func:`glmeeg.bootstrap.bootstrap_interval` for a test."""
+    from .group_robust import group_layout
+
+    groups, sign = group_layout(test.group_matrix.matrix, test.group_contrast.matrix, method="bootstrap")
+    trim = (0.2 if test.spec.trim is None else test.spec.trim) if test.spec.group_method == "trimmed" else 0.0
+    return dict(groups=groups, sign=sign, trim=trim, confidence_level=test.spec.confidence_level,
+                n_resamples=test.spec.bootstrap, method=test.spec.bootstrap_method,
+                seed=test.spec.seed if test.spec.seed is not None else 0)
+
+
+def _cluster_bootstrap(clusters, labels: np.ndarray, Y: np.ndarray, test: TestPlan):
+    """Bootstrap interval of the group estimate of each significant cluster's average.
+
+    Each subject's contrast estimates are averaged over the cluster's points; the averages of
+    all significant clusters are resampled together (the same resamples, so the intervals are
+    joint draws), with the test's bootstrap settings. Like the cluster's effect size, the
+    estimate is selected in the same data and biased away from zero.
+    """
+    from .bootstrap import bootstrap_interval, group_estimate
+
+    chosen = [c for c in clusters if c.significant]
+    if not chosen:
+        return clusters
+    avg = np.column_stack([Y[:, 0, labels == c.id].mean(axis=1) for c in chosen])
+    settings = _bootstrap_settings(test)
+    boot = bootstrap_interval(avg, **settings)
+    est = group_estimate(avg, groups=settings["groups"], sign=settings["sign"], trim=settings["trim"])
+    update = {c.id: {"estimate": float(est[i]), "estimate_low": float(boot.low[i]),
+                     "estimate_high": float(boot.high[i])} for i, c in enumerate(chosen)}
+    return tuple(c.model_copy(update=update[c.id]) if c.id in update else c for c in clusters)
+
+
+def _residual_checks(Y: np.ndarray, test: TestPlan, notes: list) -> dict:
+    """Group-level residual checks of a single-contrast test, as result fields; their
+    suggestions are appended to ``notes``."""
+    from .assumptions import group_checks
+    from .results import ResidualChecks
+
+    g = group_checks(Y, test.group_matrix.matrix, test.subjects)
+    notes.extend(n for n in g.notes if not n.startswith("fewer than 8"))
+    with np.errstate(all="ignore"):
+        skew = float(np.nanmedian(np.abs(g.skewness))) if np.isfinite(g.skewness).any() else float("nan")
+        kurt = float(np.nanmedian(g.excess_kurtosis)) if np.isfinite(g.excess_kurtosis).any() else float("nan")
+    summary = ResidualChecks(share_rejected=None if np.isnan(g.share_rejected) else g.share_rejected,
+                             median_abs_skewness=skew, median_excess_kurtosis=kurt,
+                             outlying_subjects=g.outlying_subjects)
+    return dict(residual_skewness=g.skewness, residual_kurtosis=g.excess_kurtosis,
+                normality_p=g.normality_p, residual_checks=summary)
+
+
 def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, *,
                prov: Provenance, memory_limit: int = 512 * 2**20) -> TestResult:
     """Run one test at the group level and apply its correction."""
@@ -369,23 +417,21 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
     extra: dict = {}
     if test.spec.bootstrap:
         from .bootstrap import bootstrap_interval
-        from .group_robust import group_layout
-        groups, sign = group_layout(test.group_matrix.matrix, test.group_contrast.matrix, method="bootstrap")
-        trim = (0.2 if test.spec.trim is None else test.spec.trim) if test.spec.group_method == "trimmed" else 0.0
-        seed = test.spec.seed if test.spec.seed is not None else 0
-        boot = bootstrap_interval(Y[:, 0], groups=groups, sign=sign, trim=trim,
-                                  confidence_level=test.spec.confidence_level,
-                                  n_resamples=test.spec.bootstrap, method=test.spec.bootstrap_method, seed=seed)
+        boot = bootstrap_interval(Y[:, 0], **_bootstrap_settings(test))
         extra.update(estimate_low=boot.low, estimate_high=boot.high)
     correction = test.spec.correction_settings()
     alpha = test.spec.alpha
     notes = list(test.notes)
+    if test.subject_contrast.n_rows == 1:
+        extra.update(_residual_checks(Y[:, 0], test, notes))
     if correction.method in PERMUTATION_METHODS:
         from .inference.permutation import permutation_test
 
         perm = permutation_test(Y, test.group_matrix.matrix, test.group_contrast.matrix,
                                 kind=stats.kind, df=stats.df, alternative=test.spec.alternative,
-                                correction=correction, graph=plan.graph, memory_limit=memory_limit)
+                                correction=correction, graph=plan.graph, method=test.spec.group_method,
+                                trim=0.2 if test.spec.trim is None else test.spec.trim,
+                                memory_limit=memory_limit)
         p_corr = perm.p_corrected
         significant = np.nan_to_num(p_corr, nan=1.0) <= alpha
         labels, p_by_id, kind = None, {}, "region"
@@ -401,6 +447,8 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
             clusters = describe_clusters(labels, np.nan_to_num(stats.statistic), plan.study.axes,
                                          p_by_id, alpha=alpha, kind=kind)
             extra["clusters"] = _cluster_effect_sizes(clusters, labels, Y, test)
+            if test.spec.bootstrap:
+                extra["clusters"] = _cluster_bootstrap(extra["clusters"], labels, Y, test)
         extra.update(p_permutation=perm.p_uncorrected, null_distribution=perm.null_distribution,
                      resampling=Resampling(scheme=perm.scheme, n_resamplings=perm.n_resamplings,
                                            exhaustive=perm.exhaustive, seed=perm.seed,
@@ -434,7 +482,8 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
                       effect_size_corrected_name=stats.effect_size_corrected_name,
                       effect_size_low=stats.effect_size_low if has_interval else None,
                       effect_size_high=stats.effect_size_high if has_interval else None,
-                      confidence_level=stats.confidence_level, notes=tuple(notes), provenance=prov, **extra)
+                      confidence_level=stats.confidence_level, notes=tuple(notes), provenance=prov,
+                      subject_estimates=Y, group_design=test.group_matrix.matrix, **extra)
 
 
 def run_analysis(design: str | Path | AnalysisPlan, *,

@@ -28,7 +28,7 @@ from typing import Annotated, Any, Literal
 
 import numpy as np
 import pandas as pd
-from pydantic import BaseModel, ConfigDict, PlainSerializer, PlainValidator, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, PlainSerializer, PlainValidator, ValidationError
 
 from .axes import Axes
 from .errors import GlmeegError
@@ -121,12 +121,32 @@ class SubjectSummary(_Frozen):
 
 _ARRAYS = ("estimate", "standard_error", "statistic", "p", "p_corrected", "significant",
            "effect_size", "effect_size_corrected", "subject_contrast", "group_contrast")
-# Arrays present only for permutation-based corrections.
+# Arrays present only for some corrections and options; the last two are the group test's
+# inputs (for simulated power), absent from results saved by earlier versions.
 _OPTIONAL_ARRAYS = ("p_permutation", "tfce", "cluster", "null_distribution", "effect_size_low",
-                    "effect_size_high", "estimate_low", "estimate_high")
+                    "effect_size_high", "estimate_low", "estimate_high", "subject_estimates",
+                    "group_design", "residual_skewness", "residual_kurtosis", "normality_p")
 _MAPS = ("estimate", "standard_error", "statistic", "p", "p_corrected", "significant",
          "effect_size", "effect_size_corrected", "p_permutation", "tfce", "cluster",
-         "effect_size_low", "effect_size_high", "estimate_low", "estimate_high")
+         "effect_size_low", "effect_size_high", "estimate_low", "estimate_high",
+         "residual_skewness", "residual_kurtosis", "normality_p")
+
+
+class ResidualChecks(_Frozen):
+    """Summary of the group-level residual checks of a single-contrast test.
+
+    The maps (``residual_skewness``, ``residual_kurtosis``, ``normality_p``) are on the
+    :class:`TestResult`; these numbers describe them.
+    """
+
+    normality_test: str = "D'Agostino-Pearson"
+    alpha: float = 0.05
+    share_rejected: float | None = Field(description="share of points where normality is rejected at "
+                                         "alpha (uncorrected: about alpha expected by chance); "
+                                         "None with fewer than 8 subjects")
+    median_abs_skewness: float
+    median_excess_kurtosis: float
+    outlying_subjects: tuple[str, ...] = ()
 
 
 class Resampling(_Frozen):
@@ -185,6 +205,15 @@ class TestResult(_Frozen):
     clusters: tuple[Cluster, ...] = ()
     resampling: Resampling | None = None
     null_distribution: Array | None = None
+    # The group test's inputs: subject contrast estimates (n_subjects, k, n_points) in
+    # ``subjects`` order and the group design matrix (n_subjects, q); None in older files.
+    subject_estimates: Array | None = None
+    group_design: Array | None = None
+    # Group-level residual checks (single-contrast tests): maps and their summary.
+    residual_skewness: Array | None = None
+    residual_kurtosis: Array | None = None
+    normality_p: Array | None = None
+    residual_checks: ResidualChecks | None = None
     notes: tuple[str, ...] = ()
     provenance: Provenance
 
@@ -244,6 +273,9 @@ class TestResult(_Frozen):
         df["effect_size_corrected"] = self.effect_size_corrected
         if self.kind == "t":
             df["effect_size_label"] = size_label(self.effect_size)
+        for name in ("residual_skewness", "residual_kurtosis", "normality_p"):
+            if getattr(self, name) is not None:
+                df[name] = getattr(self, name)
         return df
 
     def clusters_frame(self) -> pd.DataFrame:
@@ -311,6 +343,7 @@ class TestResult(_Frozen):
                 "effect_size_name": self.effect_size_name,
                 "effect_size_corrected_name": self.effect_size_corrected_name,
                 "resampling": self.resampling.model_dump() if self.resampling else None,
+                "residual_checks": self.residual_checks.model_dump() if self.residual_checks else None,
                 "findings": self.findings(), "notes": list(self.notes),
                 "cautions": [CAUTION] + ([CLUSTER_CAUTION] if self.resampling else []) + [CLINICAL_CAUTION]}
 
@@ -352,6 +385,9 @@ class TestResult(_Frozen):
                 size = ("" if c.effect_size is None else
                         f"; average {self.effect_size_name} = {c.effect_size:.2f} "
                         f"[{c.effect_size_low:.2f}, {c.effect_size_high:.2f}] (selected: biased upwards)")
+                if c.estimate_low is not None:
+                    size += (f"; average estimate {c.estimate:.3g} [bootstrap {c.estimate_low:.3g}, "
+                             f"{c.estimate_high:.3g}]")
                 lines.append(f"    #{c.id} {c.sign}, {span}, {c.extent} points, p = {c.p:.4g}; peak "
                              f"{c.peak_channel} {1000 * c.peak_time:.0f} ms ({self.kind} = "
                              f"{c.peak_statistic:.2f}); channels {' '.join(c.channels)}{size}")
@@ -360,6 +396,14 @@ class TestResult(_Frozen):
         if f["n_nonfinite"]:
             lines.append(f"  warning: the statistic is not finite at {f['n_nonfinite']} points "
                          "(zero variance or missing data); they are left out of the correction")
+        rc = self.residual_checks
+        if rc is not None:
+            share = ("not tested (fewer than 8 subjects)" if rc.share_rejected is None else
+                     f"{100 * rc.share_rejected:.1f} % of points (about {100 * rc.alpha:g} % by chance)")
+            lines.append(f"  residual checks: normality ({rc.normality_test}) rejected at {share}; "
+                         f"median |skewness| {rc.median_abs_skewness:.2f}, median excess kurtosis "
+                         f"{rc.median_excess_kurtosis:.2f}"
+                         + (f"; outlying subjects {', '.join(rc.outlying_subjects)}" if rc.outlying_subjects else ""))
         for n in self.notes:
             lines.append(f"  note: {n}")
         lines.append(f"  caution: {CAUTION}")

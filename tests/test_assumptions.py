@@ -76,3 +76,37 @@ def test_check_finds_the_demo_artefact_trials(tmp_path):
     # almost nothing else is flagged.
     assert hits / planted >= 0.75
     assert hits / max(found, 1) >= 0.9
+
+
+def test_results_carry_the_residual_checks_of_every_single_contrast_test(tmp_path):
+    import statsmodels.api as sm
+
+    import glmeeg
+
+    tests = '''
+[[test]]
+name = "group-diff"
+subject_contrast = "condition[T.b]"
+group_formula = "group"
+group_contrast = "group[T.y]"
+correction = "holm"
+'''
+    design = write_study(tmp_path / "s", n_subjects=12, seed=14, tests=tests)
+    plan = glmeeg.plan_analysis(design)
+    t = glmeeg.run_analysis(plan).test("group-diff")
+    Y = glmeeg.fit_subjects(plan).estimates[:, 0, :]
+    G = plan.tests[0].group_matrix.matrix
+    for j in (0, 7, 20):
+        # Source: residuals of statsmodels OLS on the group design; scipy's bias-corrected
+        # skewness and excess kurtosis and D'Agostino-Pearson test of those residuals.
+        resid = sm.OLS(Y[:, j], G).fit().resid
+        # Tolerances: both fit the same 12 x 2 least-squares problem (rounding ~1e-15 relative);
+        # the standardized moments and the test amplify that by far less than 1e6.
+        assert abs(t.residual_skewness[j] - scipy.stats.skew(resid, bias=False)) < 1e-9
+        assert abs(t.residual_kurtosis[j] - scipy.stats.kurtosis(resid, bias=False)) < 1e-9
+        assert abs(t.normality_p[j] - scipy.stats.normaltest(resid).pvalue) < 1e-9
+    rc = t.residual_checks
+    assert rc.share_rejected == np.mean(t.normality_p < 0.05)
+    assert "residual checks: normality" in str(t)
+    assert t.summary()["residual_checks"]["share_rejected"] == rc.share_rejected
+    assert {"residual_skewness", "residual_kurtosis", "normality_p"} <= set(t.to_frame().columns)

@@ -374,7 +374,8 @@ seed = 3
 """
 CLUSTER_COLUMNS = ["id", "kind", "sign", "mass", "extent", "first_time", "last_time", "channels",
                    "peak_channel", "peak_time", "peak_statistic", "p", "significant",
-                   "effect_size", "effect_size_low", "effect_size_high"]
+                   "effect_size", "effect_size_low", "effect_size_high",
+                   "estimate", "estimate_low", "estimate_high"]
 
 
 def invoke(*args):

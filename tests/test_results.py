@@ -141,7 +141,8 @@ def test_t_frame_columns(run):
     frame = run.test("b-vs-a").to_frame()
     assert list(frame.columns) == ["channel", "time", "estimate", "standard_error", "statistic", "p",
                                    "p_corrected", "significant", "effect_size", "effect_size_low",
-                                   "effect_size_high", "effect_size_corrected", "effect_size_label"]
+                                   "effect_size_high", "effect_size_corrected", "effect_size_label",
+                                   "residual_skewness", "residual_kurtosis", "normality_p"]
     np.testing.assert_array_equal(frame["estimate"], run.test("b-vs-a").estimate[0])
 
 
