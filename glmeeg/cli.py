@@ -137,15 +137,8 @@ def neighbours(design: Annotated[Path, typer.Argument(help="Design file (TOML)."
         typer.echo(f"warning: {len(graph.isolated)} sensor(s) have no neighbours: "
                    f"{', '.join(graph.isolated)}", err=True)
     if out is not None:
-        if out.exists() and out.is_dir():
-            raise GlmeegError(f"{out}: is a folder; expected a file name for the neighbour table")
-        tmp = out.with_name(f".{out.name}.partial")
-        try:
-            graph.to_frame().to_csv(tmp, index=False)
-            tmp.replace(out)
-        except OSError as e:
-            tmp.unlink(missing_ok=True)
-            raise GlmeegError(f"{out}: cannot be written ({e.strerror})") from None
+        from .results import write_table
+        write_table(graph.to_frame(), out, label="--out (neighbour table)")
         typer.echo(f"neighbour table written to {out}")
 
 
@@ -428,13 +421,8 @@ def _simulated_power(from_result: Path, *, n: str | None, alpha, simulations, co
         raise
     _close_progress()
     if csv is not None:
-        tmp = csv.with_name(f".{csv.name}.partial")
-        try:
-            sim.to_frame().to_csv(tmp, index=False, float_format="%.10g")
-            tmp.replace(csv)
-        except OSError as e:
-            tmp.unlink(missing_ok=True)
-            raise GlmeegError(f"--csv: {csv} cannot be written ({e.strerror})") from None
+        from .results import write_table
+        write_table(sim.to_frame(), csv, label="--csv")
     if as_json:
         typer.echo(json.dumps(sim.model_dump(mode="json")))
         return

@@ -38,7 +38,8 @@ from .inference.corrections import Correction
 from .spec import TestSpec
 
 __all__ = ["Provenance", "SubjectSummary", "TestResult", "RunResult", "load_result", "load_run",
-           "write_run", "check_output_folder", "provenance", "CAUTION", "CLINICAL_CAUTION"]
+           "write_run", "write_table", "check_output_folder", "provenance", "CAUTION",
+           "CLINICAL_CAUTION"]
 
 SCHEMA_VERSION = 1
 CLINICAL_CAUTION = ("glmeeg is research software, not a clinical diagnostic device: clinical EEG "
@@ -490,6 +491,28 @@ class RunResult(_Frozen):
                 f"missing values); subject model: {self.subject_formula}")
         return "\n".join([head] + [f"warning: {w}" for w in self.warnings]
                          + [str(t) for t in self.tests] + [CLINICAL_CAUTION])
+
+
+def write_table(frame: pd.DataFrame, path: str | Path, *, label: str | None = None) -> Path:
+    """Write a table as CSV atomically (a temporary file beside it, then a rename).
+
+    Raises
+    ------
+    GlmeegError
+        ``path`` is a folder or cannot be written; ``label`` (default: the path) names it.
+    """
+    path = Path(path)
+    label = label or str(path)
+    if path.is_dir():
+        raise GlmeegError(f"{label}: {path} is a folder; expected a file name")
+    tmp = path.with_name(f".{path.name}.partial")
+    try:
+        frame.to_csv(tmp, index=False, float_format="%.10g")
+        tmp.replace(path)
+    except OSError as e:
+        tmp.unlink(missing_ok=True)
+        raise GlmeegError(f"{label}: {path} cannot be written ({e.strerror})") from None
+    return path
 
 
 def check_output_folder(out: str | Path) -> Path:

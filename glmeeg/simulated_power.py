@@ -247,7 +247,7 @@ def _points_graph(graph, result: TestResult) -> tuple[tuple[np.ndarray, np.ndarr
     channels = result.axes.channels
     if graph is None:
         try:
-            sg = sensor_graph(pd.DataFrame({"name": list(channels)}), sensors_label="the result's channel names")
+            sg = sensor_graph(pd.DataFrame({"name": list(channels)}), sensors_label="the saved result")
         except GlmeegError:
             raise ModelError("graph: the neighbour graph cannot be rebuilt from the channel names (not all "
                              "are 10-10 names); pass the pilot's neighbour table (on the command line "
