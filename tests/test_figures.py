@@ -1,0 +1,216 @@
+"""Figures: each is rendered to PNG, read back and checked for size, labels and content.
+
+Results come from small synthetic studies run through the whole pipeline (conftest.write_study),
+with an effect planted at channel Cz (index 1), samples 2-4.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+matplotlib = pytest.importorskip("matplotlib")
+from matplotlib.image import imread  # noqa: E402
+
+import glmeeg  # noqa: E402
+from glmeeg import figures  # noqa: E402
+from glmeeg.errors import GlmeegError  # noqa: E402
+
+from conftest import write_study  # noqa: E402
+
+DPI = 80
+TESTS = """\
+[[test]]
+name = "b-vs-a"
+subject_contrast = "condition[T.b]"
+correction = "holm"
+
+[[test]]
+name = "condition"
+subject_contrast = ["condition[T.b]", "condition[T.c]"]
+correction = "fdr"
+"""
+
+
+@pytest.fixture(scope="module")
+def run(tmp_path_factory):
+    design = write_study(tmp_path_factory.mktemp("study"), effect=1.5, seed=1, tests=TESTS)
+    return glmeeg.run_analysis(design)
+
+
+@pytest.fixture(scope="module")
+def tf_result(tmp_path_factory):
+    design = write_study(tmp_path_factory.mktemp("tf"), effect=1.5, seed=1, n_freqs=3,
+                         extra_data="frequencies = [4.0, 8.0, 12.0]")
+    return glmeeg.run_analysis(design).test("b-vs-a")
+
+
+def render(fig, tmp_path: Path, name: str = "figure.png") -> np.ndarray:
+    """Save at DPI, read back, check it is not blank and has the figure's size in pixels."""
+    path = tmp_path / name
+    fig.savefig(path, dpi=DPI)
+    image = imread(path)
+    width, height = fig.get_size_inches()
+    assert image.shape[:2] == (round(height * DPI), round(width * DPI))
+    assert image[..., :3].std() > 0.02
+    return image
+
+
+def main_axes(fig):
+    """The plotting axes (not the colour bar)."""
+    return fig.axes[0]
+
+
+def outline_segments(ax) -> int:
+    return sum(len(c.get_segments()) for c in ax.collections if c.get_gid() == "significance-outline")
+
+
+def test_statistic_image(run, tmp_path):
+    result = run.test("b-vs-a")
+    assert result.n_significant > 0
+    fig = figures.statistic_image(result, size=(6, 4))
+    render(fig, tmp_path)
+    ax = main_axes(fig)
+    assert ax.get_xlabel() == "time (ms)"
+    assert ax.get_ylabel() == "channel (front to back)"
+    assert [t.get_text() for t in ax.get_yticklabels()] == ["Fz", "Cz", "Pz", "Oz"]
+    assert fig.axes[1].get_ylabel().startswith("t")
+    # Each significant cell adds up to 4 edges; a solid block of them has at least 4.
+    assert outline_segments(ax) >= 4
+    mesh = ax.collections[0]
+    assert mesh.cmap.name.startswith("RdBu_r")
+    assert mesh.norm.vmin == -mesh.norm.vmax
+    # Times are shown in ms: the first sample is at -100 ms.
+    assert ax.get_xlim()[0] < -99
+
+
+def test_statistic_image_f_test_and_saved_result(run, tmp_path):
+    glmeeg.write_run(run, tmp_path / "out")
+    folder = next(p.parent for p in (tmp_path / "out").rglob("result.npz")
+                  if glmeeg.load_result(p).name == "condition")
+    fig = figures.statistic_image(folder)
+    render(fig, tmp_path)
+    mesh = main_axes(fig).collections[0]
+    assert mesh.cmap.name.startswith("viridis") and mesh.norm.vmin == 0
+    assert fig.axes[1].get_ylabel().startswith("F")
+
+
+def test_statistic_image_no_outline_when_nothing_significant(tmp_path):
+    design = write_study(tmp_path / "null", seed=3, n_channels=2, n_times=4, n_subjects=6,
+                         n_trials=12)
+    result = glmeeg.run_analysis(design).test("b-vs-a")
+    if result.n_significant:  # pragma: no cover - the seed gives none
+        pytest.skip("something significant by chance")
+    fig = figures.statistic_image(result)
+    render(fig, tmp_path)
+    assert outline_segments(main_axes(fig)) == 0
+
+
+def test_estimate_time_courses(run, tmp_path):
+    result = run.test("b-vs-a")
+    fig = figures.estimate_time_courses(result, size=(6, 3.5))
+    render(fig, tmp_path)
+    ax = main_axes(fig)
+    lines = [ln for ln in ax.get_lines() if ln.get_gid() == "channel-line"]
+    assert len(lines) == len(result.axes.channels)
+    assert {ln.get_label() for ln in lines} == set(result.axes.channels)
+    assert ax.get_xlabel() == "time (ms)"
+    assert ax.get_ylabel().startswith("estimate")
+    spans = [p for p in ax.patches if p.get_gid() == "significant-span"]
+    assert spans
+    # The span covers the planted samples 2-4 (-80 to -60 ms), half-way to the neighbours.
+    x0, x1 = spans[0].get_x(), spans[0].get_x() + spans[0].get_width()
+    assert x0 == pytest.approx(-85.0) and x1 == pytest.approx(-55.0)
+
+
+def test_estimate_time_courses_rows(run, tmp_path):
+    result = run.test("condition")
+    fig = figures.estimate_time_courses(result, row=1)
+    render(fig, tmp_path)
+    assert result.estimate_labels[1] in main_axes(fig).get_ylabel()
+    with pytest.raises(GlmeegError, match="row"):
+        figures.estimate_time_courses(result, row="nope")
+    with pytest.raises(GlmeegError, match="row"):
+        figures.estimate_time_courses(result, row=5)
+
+
+def test_frequency_time_image(tf_result, tmp_path):
+    fig = figures.frequency_time_image(tf_result, channel="Cz")
+    render(fig, tmp_path)
+    ax = main_axes(fig)
+    assert ax.get_xlabel() == "time (ms)"
+    assert ax.get_ylabel() == "frequency (Hz)"
+    assert outline_segments(ax) >= 4
+    # Cells run half-way between the frequencies 4, 8, 12 Hz.
+    assert ax.get_ylim() == pytest.approx((2.0, 14.0))
+
+
+def test_frequency_time_image_errors(run, tf_result):
+    with pytest.raises(GlmeegError, match="no frequency axis"):
+        figures.frequency_time_image(run.test("b-vs-a"), channel="Cz")
+    with pytest.raises(GlmeegError, match="'T9' is not in"):
+        figures.frequency_time_image(tf_result, channel="T9")
+
+
+def test_statistic_image_time_frequency_needs_a_frequency(tf_result, tmp_path):
+    with pytest.raises(GlmeegError, match="frequency="):
+        figures.statistic_image(tf_result)
+    with pytest.raises(GlmeegError, match="not in the result"):
+        figures.statistic_image(tf_result, frequency=5.0)
+    fig = figures.statistic_image(tf_result, frequency=8.0)
+    render(fig, tmp_path)
+    assert "8 Hz" in main_axes(fig).get_title()
+
+
+def test_design_image(tmp_path):
+    rng = np.random.default_rng(0)
+    x = np.column_stack([np.ones(20), np.arange(20) % 2, rng.normal(50, 10, 20)])
+    names = ["Intercept", "condition[T.b]", "intensity"]
+    fig = figures.design_image(x, names, title="Subject s01")
+    render(fig, tmp_path)
+    ax = main_axes(fig)
+    assert [t.get_text() for t in ax.get_xticklabels()] == names
+    assert ax.get_xlabel() and ax.get_ylabel()
+    assert ax.get_title() == "Subject s01"
+    with pytest.raises(GlmeegError, match="2 names for 3 columns"):
+        figures.design_image(x, names[:2])
+    with pytest.raises(GlmeegError, match="2-D"):
+        figures.design_image(np.ones(3), ["a"])
+
+
+def test_power_curve_figure(tmp_path):
+    curve = glmeeg.power_curve(design="paired", effect_size=0.5, n_values=range(5, 61, 5))
+    fig = figures.power_curve_figure(curve, target=0.8)
+    render(fig, tmp_path)
+    ax = main_axes(fig)
+    assert ax.get_xlabel().startswith("n") and ax.get_ylabel() == "power"
+    gids = {ln.get_gid(): ln for ln in ax.get_lines()}
+    assert list(gids["target-line"].get_ydata()) == [0.8, 0.8]
+    assert len(gids["power-curve"].get_xdata()) == len(curve)
+    # Paired, dz = 0.5, two-sided alpha 0.05: n = 34 is the first whole n with power 0.8,
+    # so on this grid 35 is the first value reaching it.
+    assert gids["target-n"].get_xdata()[0] == 35
+    with pytest.raises(GlmeegError, match="columns 'n' and 'power'"):
+        figures.power_curve_figure(curve.rename(columns={"power": "p"}))
+    with pytest.raises(GlmeegError, match="target"):
+        figures.power_curve_figure(curve, target=1.5)
+
+
+def test_draws_into_given_axes(run, tmp_path):
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(8, 3))
+    left, right = fig.subplots(1, 2)
+    assert figures.statistic_image(run.test("b-vs-a"), ax=left, footnote=False) is fig
+    assert figures.estimate_time_courses(run.test("b-vs-a"), ax=right, footnote=False) is fig
+    render(fig, tmp_path)
+
+
+def test_command_line_does_not_import_matplotlib():
+    code = "import sys, glmeeg, glmeeg.cli; print('matplotlib' in sys.modules)"
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "False"
