@@ -179,6 +179,23 @@ def demo(folder: Annotated[Path, typer.Argument(help="Folder for the demo study 
     typer.echo(demo_verdict(result))
 
 
+@app.command()
+@_reports_errors
+def schema(out: Annotated[Optional[Path], typer.Option("--out", "-o", help="Write the schema to "
+                                                       "this file instead of printing it.")] = None) -> None:
+    """Print the JSON Schema of a test's summary.json (versioned; one JSON document)."""
+    import json
+
+    from .results import summary_schema, write_text
+
+    text = json.dumps(summary_schema(), indent=2) + "\n"
+    if out is None:
+        typer.echo(text, nl=False)
+        return
+    write_text(text, out, label="--out (schema)")
+    typer.echo(f"schema written to {out}", err=True)
+
+
 _POWER_OPTIONS = {"effect_size": "--effect-size", "n": "--n", "alpha": "--alpha", "power": "--power",
                   "design": "--design", "alternative": "--alternative",
                   "df_numerator": "--df-numerator", "groups": "--groups", "n_values": "--curve"}

@@ -39,9 +39,11 @@ from .spec import TestSpec
 
 __all__ = ["Provenance", "SubjectSummary", "TestResult", "RunResult", "load_result", "load_run",
            "write_run", "write_table", "check_output_folder", "provenance", "CAUTION",
-           "CLINICAL_CAUTION"]
+           "CLINICAL_CAUTION", "read_netcdf", "load_netcdf", "Summary", "summary_schema", "write_text",
+           "NETCDF_FORMAT"]
 
 SCHEMA_VERSION = 1
+NETCDF_FORMAT = "glmeeg test result"
 CLINICAL_CAUTION = ("glmeeg is research software, not a clinical diagnostic device: clinical EEG "
                     "interpretation belongs to licensed clinicians under local regulations.")
 CAUTION = ("Significant points are where the test rejects the null hypothesis under the chosen "
@@ -76,6 +78,42 @@ class Provenance(_Frozen):
     created: str
     design_file: str | None = None
     input_sha256: dict[str, str] = {}
+
+
+def _need(module: str, what: str, extra: str):
+    """Import an optional package, or say which extra installs it."""
+    import importlib
+
+    try:
+        return importlib.import_module(module)
+    except ImportError:
+        raise GlmeegError(f"{what} needs {module}: pip install 'glmeeg[{extra}]'") from None
+
+
+def _write_atomically(path: Path, write, *, label: str) -> Path:
+    """Call ``write(tmp)`` on a temporary file beside ``path``, then rename it into place.
+
+    Raises
+    ------
+    GlmeegError
+        ``path`` is a folder, its folder does not exist, or it cannot be written.
+    """
+    if path.is_dir():
+        raise GlmeegError(f"{label}: {path} is a folder; expected a file name")
+    if not path.absolute().parent.is_dir():
+        raise GlmeegError(f"{label}: {path} cannot be written (folder {path.absolute().parent} "
+                          "does not exist)")
+    tmp = path.with_name(f".{path.name}.partial")
+    try:
+        write(tmp)
+        tmp.replace(path)
+    except OSError as e:
+        tmp.unlink(missing_ok=True)
+        raise GlmeegError(f"{label}: {path} cannot be written ({e.strerror or e})") from None
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return path
 
 
 def _sha256(path: Path) -> str:
@@ -158,6 +196,100 @@ class Resampling(_Frozen):
     exhaustive: bool
     seed: int
     cluster_threshold: float | None = None
+
+
+class _SummaryPart(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+class SummaryPeak(_SummaryPart):
+    """The point of the largest statistic (|t| for t tests) among points with a finite p."""
+
+    channel: str
+    frequency: float | None = Field(None, description="Hz; time-frequency results only")
+    time: float = Field(description="seconds")
+    statistic: float
+    p: float
+    p_corrected: float
+    effect_size: float
+    effect_size_interval: list[float] | None = Field(description="[low, high] confidence interval "
+                                                     "of the effect size; null when not computed",
+                                                     min_length=2, max_length=2)
+
+
+class SummaryChannel(_SummaryPart):
+    """Where one channel has significant points."""
+
+    channel: str
+    first_time: float = Field(description="seconds")
+    last_time: float = Field(description="seconds")
+    n_points: int = Field(ge=1)
+
+
+class SummaryFindings(_SummaryPart):
+    """What was found (see :meth:`TestResult.findings`)."""
+
+    n_points: int = Field(ge=1)
+    n_significant: int = Field(ge=0)
+    n_nonfinite: int = Field(ge=0, description="points where the statistic is not finite")
+    peak: SummaryPeak | None = Field(None, description="absent when no point has a finite p")
+    channels: list[SummaryChannel]
+    clusters: list[Cluster] = Field(description="significant clusters or regions only")
+
+
+class Summary(_SummaryPart):
+    """The content of a test's ``summary.json`` (what :meth:`TestResult.summary` returns).
+
+    :func:`summary_schema` turns this model into the published JSON Schema; ``summary()``
+    validates its output through it, so the two cannot drift apart.
+    """
+
+    model_config = ConfigDict(extra="forbid", title="glmeeg summary.json")
+
+    schema_version: int = Field(ge=1, description="layout version of saved results")
+    test: str = Field(description="the test's name in the design file")
+    kind: Literal["t", "F"]
+    df: list[float] = Field(min_length=2, max_length=2, description="[numerator, denominator] "
+                            "degrees of freedom (numerator 1 for t tests)")
+    alternative: Literal["two-sided", "greater", "less"]
+    alpha: float = Field(gt=0, lt=1)
+    correction: Correction
+    n_subjects: int = Field(ge=1)
+    subject_contrast: dict[str, list[float]] = Field(description="contrast row label -> weights "
+                                                     "on subject_columns")
+    subject_columns: list[str]
+    group_formula: str
+    group_columns: list[str]
+    group_contrast: dict[str, list[float]] = Field(description="contrast row label -> weights on "
+                                                   "group_columns")
+    effect_size_name: str
+    effect_size_corrected_name: str
+    resampling: Resampling | None = Field(description="null unless max / cluster / tfce")
+    residual_checks: ResidualChecks | None = Field(description="null for multi-row contrasts")
+    findings: SummaryFindings
+    notes: list[str]
+    cautions: list[str]
+
+
+def summary_schema() -> dict:
+    """The JSON Schema (draft 2020-12) of ``summary.json``, version :data:`SCHEMA_VERSION`.
+
+    Returns
+    -------
+    dict
+        With ``$schema``, ``$id``, ``title``, ``version`` and ``description`` on top of the
+        schema generated from :class:`Summary`.
+    """
+    schema = Summary.model_json_schema()
+    head = {"$schema": "https://json-schema.org/draft/2020-12/schema",
+            "$id": f"urn:glmeeg:schema:summary:{SCHEMA_VERSION}",
+            "title": "glmeeg summary.json", "version": SCHEMA_VERSION,
+            "description": ("What one glmeeg test found, as written to <run folder>/<test>/"
+                            f"summary.json (schema_version {SCHEMA_VERSION}). Numbers may be NaN "
+                            "where a statistic could not be computed.")}
+    schema.pop("title", None)
+    schema.pop("description", None)
+    return {**head, **schema}
 
 
 class TestResult(_Frozen):
@@ -284,24 +416,120 @@ class TestResult(_Frozen):
         return clusters_frame(self.clusters, frequencies=self.axes.frequencies is not None)
 
     def to_xarray(self):
-        """An ``xarray.Dataset`` with dims channel, (frequency,) time (needs xarray)."""
-        try:
-            import xarray as xr
-        except ImportError:  # pragma: no cover - depends on the environment
-            raise GlmeegError("to_xarray needs xarray: pip install 'glmeeg[xarray]'") from None
+        """Every array of the result as a labelled ``xarray.Dataset`` (needs xarray).
+
+        Maps have dims ``channel``, (``frequency``,) ``time``; ``estimate`` (and
+        ``estimate_low``/``estimate_high``) add ``contrast`` in front. The group test's inputs
+        come too: ``subject_estimates`` (``subject``, ``subject_contrast_row``, point dims),
+        ``group_design`` (``subject``, ``group_column``), ``subject_contrast``,
+        ``group_contrast`` and ``null_distribution`` (``resampling``). Fields that are None for
+        this test are left out. Scalar settings are attributes; ``settings_json`` holds every
+        setting that is not an array (clusters, provenance ...) as JSON. Booleans among the
+        attributes are stored as 0/1 integers (netCDF has no boolean attributes).
+
+        Returns
+        -------
+        xarray.Dataset
+
+        Raises
+        ------
+        GlmeegError
+            xarray is not installed.
+        """
+        xr = _need("xarray", "to_xarray", "xarray")
         dims = self.axes.dims
-        coords = {"channel": list(self.axes.channels), "time": list(self.axes.times)}
+        coords: dict[str, Any] = {"channel": np.array(self.axes.channels, dtype=str),
+                                  "time": np.array(self.axes.times, dtype=np.float64),
+                                  "contrast": np.array(self.estimate_labels, dtype=str),
+                                  "subject": np.array(self.subjects, dtype=str),
+                                  "subject_contrast_row": np.array(self.subject_contrast_labels, dtype=str),
+                                  "subject_column": np.array(self.subject_columns, dtype=str),
+                                  "group_contrast_row": np.array(self.group_contrast_labels, dtype=str),
+                                  "group_column": np.array(self.group_columns, dtype=str)}
         if self.axes.frequencies is not None:
-            coords["frequency"] = list(self.axes.frequencies)
-        data = {f: (dims, self.map(f)) for f in ("statistic", "p", "p_corrected", "significant",
-                                                 "effect_size", "effect_size_corrected",
-                                                 "p_permutation", "tfce", "cluster")
-                if getattr(self, f) is not None}
-        data["estimate"] = (("contrast",) + dims, self.map("estimate"))
-        coords["contrast"] = list(self.estimate_labels)
-        return xr.Dataset(data, coords=coords, attrs={"test": self.name, "kind": self.kind,
-                                                      "df": list(self.df),
-                                                      "effect_size_name": self.effect_size_name})
+            coords["frequency"] = np.array(self.axes.frequencies, dtype=np.float64)
+        data: dict[str, Any] = {}
+        for f in _MAPS:
+            value = getattr(self, f)
+            if value is None:
+                continue
+            if f in ("estimate", "estimate_low", "estimate_high") and np.ndim(value) == 2:
+                data[f] = (("contrast",) + dims, self.map(f))
+            else:
+                data[f] = (tuple(f"{f}_row{i}" for i in range(np.ndim(value) - 1)) + dims, self.map(f))
+        extra = {"subject_estimates": ("subject", "subject_contrast_row"),
+                 "group_design": ("subject", "group_column"),
+                 "subject_contrast": ("subject_contrast_row", "subject_column"),
+                 "group_contrast": ("group_contrast_row", "group_column"),
+                 "null_distribution": ("resampling",)}
+        for f, lead in extra.items():
+            value = getattr(self, f)
+            if value is None:
+                continue
+            value = np.asarray(value)
+            if f == "subject_estimates" and value.ndim == 3 and value.shape[-1] == self.axes.n_points:
+                data[f] = (lead + dims, self.axes.unflatten(value))
+            elif value.ndim == len(lead):
+                data[f] = (lead, value)
+            else:  # a layout this export does not know: keep it, with plain dim names
+                data[f] = (tuple(f"{f}_dim{i}" for i in range(value.ndim)), value)
+        used = {d for v in data.values() for d in v[0]}
+        coords = {k: v for k, v in coords.items() if k in used or k in dims}
+        return xr.Dataset(data, coords=coords, attrs=self._attributes())
+
+    def _attributes(self) -> dict[str, Any]:
+        """Scalar settings as netCDF-safe attributes (no None, no booleans)."""
+        attrs: dict[str, Any] = {"title": f"glmeeg test {self.name}", "format": NETCDF_FORMAT,
+                                 "schema_version": self.schema_version, "test": self.name,
+                                 "kind": self.kind, "df_numerator": float(self.df[0]),
+                                 "df_denominator": float(self.df[1]), "alternative": self.alternative,
+                                 "alpha": float(self.alpha), "confidence_level": float(self.confidence_level),
+                                 "n_subjects": self.n_subjects, "group_formula": self.group_formula,
+                                 "effect_size_name": self.effect_size_name,
+                                 "effect_size_corrected_name": self.effect_size_corrected_name,
+                                 "correction": self.correction.describe()}
+        for key, value in self.correction.model_dump().items():
+            attrs[f"correction_{key}"] = value
+        if self.resampling is not None:
+            for key, value in self.resampling.model_dump().items():
+                attrs[f"resampling_{key}"] = value
+        attrs["glmeeg_version"] = self.provenance.glmeeg_version
+        attrs["created"] = self.provenance.created
+        attrs["settings_json"] = json.dumps(self.model_dump(mode="json", exclude=set(_ARRAYS) | set(_OPTIONAL_ARRAYS)),
+                                            default=_plain)
+        return {k: (int(v) if isinstance(v, bool) else v) for k, v in attrs.items() if v is not None}
+
+    def to_netcdf(self, path: str | Path) -> Path:
+        """Write :meth:`to_xarray` as a netCDF-4 file, atomically (needs ``glmeeg[netcdf]``).
+
+        The file is written beside ``path`` under a temporary name and renamed into place, so a
+        failed write never leaves a partial file or damages an earlier one. :func:`read_netcdf`
+        gives back every variable bit for bit with its dtype (booleans stay booleans, NaN stays
+        NaN).
+
+        Parameters
+        ----------
+        path : str or Path
+            File to write (conventionally ``.nc``).
+
+        Returns
+        -------
+        Path
+
+        Raises
+        ------
+        GlmeegError
+            xarray or h5netcdf is not installed, or ``path`` cannot be written.
+        """
+        ds = self.to_xarray()
+        _need("h5netcdf", "to_netcdf", "netcdf")
+        _need("h5py", "to_netcdf", "netcdf")
+        # No fill value: nothing is masked on reading, so every NaN comes back with its bits.
+        encoding = {name: {"_FillValue": None} for name in ds.variables
+                    if ds[name].dtype.kind == "f"}
+        return _write_atomically(Path(path), lambda tmp: ds.to_netcdf(tmp, engine="h5netcdf",
+                                                                      encoding=encoding),
+                                 label=str(path))
 
     def findings(self) -> dict:
         """A summary of the significant points: count, peak, channels and their time spans."""
@@ -333,8 +561,14 @@ class TestResult(_Frozen):
         return out
 
     def summary(self) -> dict:
-        """Everything ``summary.json`` holds."""
-        return {"schema_version": self.schema_version, "test": self.name, "kind": self.kind,
+        """Everything ``summary.json`` holds; it follows :func:`summary_schema`.
+
+        Returns
+        -------
+        dict
+            Checked against :class:`Summary` (a mismatch is a bug in glmeeg).
+        """
+        out = {"schema_version": self.schema_version, "test": self.name, "kind": self.kind,
                 "df": list(self.df), "alternative": self.alternative, "alpha": self.alpha,
                 "correction": self.correction.model_dump(), "n_subjects": self.n_subjects,
                 "subject_contrast": dict(zip(self.subject_contrast_labels, self.subject_contrast.tolist())),
@@ -347,6 +581,8 @@ class TestResult(_Frozen):
                 "residual_checks": self.residual_checks.model_dump() if self.residual_checks else None,
                 "findings": self.findings(), "notes": list(self.notes),
                 "cautions": [CAUTION] + ([CLUSTER_CAUTION] if self.resampling else []) + [CLINICAL_CAUTION]}
+        Summary.model_validate(out)
+        return out
 
     def __str__(self) -> str:
         f = self.findings()
@@ -502,17 +738,100 @@ def write_table(frame: pd.DataFrame, path: str | Path, *, label: str | None = No
         ``path`` is a folder or cannot be written; ``label`` (default: the path) names it.
     """
     path = Path(path)
-    label = label or str(path)
-    if path.is_dir():
-        raise GlmeegError(f"{label}: {path} is a folder; expected a file name")
-    tmp = path.with_name(f".{path.name}.partial")
+    return _write_atomically(path, lambda tmp: frame.to_csv(tmp, index=False, float_format="%.10g"),
+                             label=label or str(path))
+
+
+def write_text(text: str, path: str | Path, *, label: str | None = None) -> Path:
+    """Write text (UTF-8) atomically: a temporary file beside ``path``, then a rename.
+
+    Raises
+    ------
+    GlmeegError
+        ``path`` is a folder or cannot be written; ``label`` (default: the path) names it.
+    """
+    path = Path(path)
+    return _write_atomically(path, lambda tmp: tmp.write_text(text, encoding="utf-8"),
+                             label=label or str(path))
+
+
+def read_netcdf(path: str | Path):
+    """Read a file written by :meth:`TestResult.to_netcdf` into memory.
+
+    Parameters
+    ----------
+    path : str or Path
+
+    Returns
+    -------
+    xarray.Dataset
+        The same variables, coordinates and attributes as :meth:`TestResult.to_xarray`, every
+        variable bit for bit with its dtype.
+
+    Raises
+    ------
+    GlmeegError
+        The file is missing, is not netCDF, was not written by glmeeg, or xarray / h5netcdf
+        are not installed.
+    """
+    path = Path(path)
+    xr = _need("xarray", "read_netcdf", "netcdf")
+    _need("h5netcdf", "read_netcdf", "netcdf")
+    _need("h5py", "read_netcdf", "netcdf")
+    if not path.is_file():
+        raise GlmeegError(f"{path}: no such file")
     try:
-        frame.to_csv(tmp, index=False, float_format="%.10g")
-        tmp.replace(path)
-    except OSError as e:
-        tmp.unlink(missing_ok=True)
-        raise GlmeegError(f"{label}: {path} cannot be written ({e.strerror})") from None
-    return path
+        ds = xr.load_dataset(path, engine="h5netcdf")
+    except (OSError, ValueError, TypeError, KeyError) as e:
+        raise GlmeegError(f"{path}: not a readable netCDF file ({e or type(e).__name__})") from None
+    if ds.attrs.get("format") != NETCDF_FORMAT:
+        raise GlmeegError(f"{path}: not a glmeeg result (no attribute format = {NETCDF_FORMAT!r})")
+    for name in list(ds.variables):
+        var = ds[name]
+        if var.dtype == object:  # variable-length strings some engines read back as objects
+            ds[name] = var.astype(str)
+        var = ds[name]
+        var.encoding.pop("_FillValue", None)
+    return ds
+
+
+def load_netcdf(path: str | Path) -> TestResult:
+    """Read a file written by :meth:`TestResult.to_netcdf` back into the :class:`TestResult`.
+
+    Parameters
+    ----------
+    path : str or Path
+
+    Returns
+    -------
+    TestResult
+        Equal to the one written, every array bit for bit.
+
+    Raises
+    ------
+    GlmeegError
+        As :func:`read_netcdf`, or the file's settings do not make a valid result.
+    """
+    ds = read_netcdf(path)
+    try:
+        meta = json.loads(ds.attrs["settings_json"])
+        n_point_dims = len(Axes.model_validate(meta["axes"]).dims)
+    except (KeyError, ValueError, TypeError) as e:
+        raise GlmeegError(f"{path}: not a glmeeg result (settings_json: {e})") from None
+    arrays = {}
+    for f in _ARRAYS + _OPTIONAL_ARRAYS:
+        if f not in ds:
+            continue
+        value = ds[f].values
+        if f in _MAPS or f == "subject_estimates":
+            value = value.reshape(value.shape[:value.ndim - n_point_dims] + (-1,))
+        arrays[f] = value
+    try:
+        return TestResult.model_validate({**meta, **arrays})
+    except ValidationError as e:
+        err = e.errors()[0]
+        where = ".".join(map(str, err["loc"])) or "(top level)"
+        raise GlmeegError(f"{path}: not a valid glmeeg result ({where}: {err['msg']})") from None
 
 
 def check_output_folder(out: str | Path) -> Path:
