@@ -84,15 +84,16 @@ def _progress(quiet: bool):
 def run(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
         out: Annotated[Path, typer.Option("--out", "-o", help="Output folder (created; an earlier "
                                                                "glmeeg result there is replaced).")],
-        quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors.")] = False) -> None:
-    """Fit every subject and run every test of DESIGN; write results to OUT."""
+        quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors.")] = False,
+        no_report: Annotated[bool, typer.Option("--no-report", help="Do not write report.html.")] = False) -> None:
+    """Fit every subject and run every test of DESIGN; write results (and report.html) to OUT."""
     from .pipeline import plan_analysis, run_analysis
     from .results import check_output_folder, write_run
 
     check_output_folder(out)  # before fitting: a wrong --out should cost nothing
     plan = plan_analysis(design)
     result = run_analysis(plan, progress=_progress(quiet))
-    write_run(result, out)
+    write_run(result, out, report=None if no_report else _report(result))
     if not quiet:
         typer.echo(str(result))
         typer.echo(f"results written to {out}")
@@ -172,11 +173,37 @@ def demo(folder: Annotated[Path, typer.Argument(help="Folder for the demo study 
         typer.echo(f"writing the demo study ({subjects} volunteers) to {folder} ...", err=True)
     design = write_demo_study(folder, n_subjects=subjects, seed=seed)
     result = run_analysis(design, progress=_progress(quiet))
-    out = write_run(result, folder / "results")
+    out = write_run(result, folder / "results", report=_report(result))
     if not quiet:
         typer.echo(str(result))
         typer.echo(f"results written to {out}")
     typer.echo(demo_verdict(result))
+
+
+def _report(result) -> str | None:
+    """The run's HTML report; None (with a warning) if it cannot be made: a report never fails
+    a run that succeeded."""
+    try:
+        from .report import render_report
+        return render_report(result)
+    except Exception as e:  # noqa: BLE001 - anything: the results matter more than the report
+        typer.echo(f"warning: report.html not written ({e})", err=True)
+        return None
+
+
+@app.command()
+@_reports_errors
+def report(results: Annotated[Path, typer.Argument(help="A run's output folder.")],
+           out: Annotated[Optional[Path], typer.Option("--out", "-o", help="Report file (default: "
+                                                       "RESULTS/report.html).")] = None) -> None:
+    """Write the self-contained HTML report of a finished run (figures need glmeeg[plots])."""
+    from .report import render_report
+    from .results import load_run_result, write_text
+
+    run = load_run_result(results)
+    path = write_text(render_report(run), out or Path(results) / "report.html",
+                      label="--out" if out else "report")
+    typer.echo(f"report written to {path}")
 
 
 @app.command()

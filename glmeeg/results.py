@@ -862,8 +862,8 @@ def check_output_folder(out: str | Path) -> Path:
     return out
 
 
-def write_run(run: RunResult, out: str | Path) -> Path:
-    """Write a run into folder ``out`` atomically.
+def write_run(run: RunResult, out: str | Path, *, report: str | None = None) -> Path:
+    """Write a run into folder ``out`` atomically (with ``report.html`` when ``report`` is given).
 
     Everything is written into a temporary folder next to ``out`` and renamed into place at the
     end, so a failed run leaves no partial folder and an earlier result at ``out`` stays intact
@@ -884,6 +884,8 @@ def write_run(run: RunResult, out: str | Path) -> Path:
         for t in run.tests:
             t.save(tmp / t.name)
         (tmp / "run.json").write_text(json.dumps(run.run_summary(), indent=2, default=_plain) + "\n")
+        if report is not None:
+            (tmp / "report.html").write_text(report, encoding="utf-8")
         if out.exists():
             old = out.with_name(f".{out.name}.{os.getpid()}.old")
             os.replace(out, old)
@@ -895,6 +897,24 @@ def write_run(run: RunResult, out: str | Path) -> Path:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return out
+
+
+def load_run_result(folder: str | Path) -> RunResult:
+    """Read a whole run folder back as a :class:`RunResult` (``run.json`` and every test)."""
+    folder = Path(folder)
+    path = folder / "run.json"
+    if not path.is_file():
+        raise GlmeegError(f"{folder}: not a glmeeg run folder (no run.json)")
+    tests = tuple(load_run(folder))
+    try:
+        meta = json.loads(path.read_text())
+        return RunResult(design=meta["design"], subject_formula=meta["subject_formula"],
+                         subject_columns=tuple(meta["subject_columns"]),
+                         subjects=tuple(SubjectSummary.model_validate(s) for s in meta["subjects"]),
+                         tests=tests, warnings=tuple(meta.get("warnings", ())),
+                         provenance=Provenance.model_validate(meta["provenance"]))
+    except (ValueError, KeyError, TypeError) as e:  # pydantic's ValidationError is a ValueError
+        raise GlmeegError(f"{path}: unreadable run summary ({str(e).splitlines()[0]})") from None
 
 
 def load_run(folder: str | Path) -> list[TestResult]:

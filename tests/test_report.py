@@ -64,3 +64,35 @@ def test_a_figure_that_cannot_be_drawn_becomes_a_note(run, monkeypatch):
     assert "could not be drawn: no positions for this figure" in page
     assert len(re.findall(r"<img ", page)) >= 2            # the other figures are still there
     assert "<h3>Clusters and regions</h3>" in page
+
+
+def test_run_writes_the_report_and_report_rewrites_it(tmp_path):
+    from typer.testing import CliRunner
+
+    from glmeeg.cli import app
+
+    design = write_study(tmp_path / "s", effect=1.5, seed=4, n_subjects=10, tests=TESTS)
+    runner = CliRunner()
+    out = tmp_path / "out"
+    assert runner.invoke(app, ["run", str(design), "--out", str(out), "-q"]).exit_code == 0
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert "<h2>Methods</h2>" in page and "data:image/png;base64," in page
+    (out / "report.html").unlink()
+    result = runner.invoke(app, ["report", str(out)])
+    assert result.exit_code == 0, result.output
+    assert (out / "report.html").read_text(encoding="utf-8").count("<img ") == page.count("<img ")
+    bare = tmp_path / "bare"
+    assert runner.invoke(app, ["run", str(design), "--out", str(bare), "-q", "--no-report"]).exit_code == 0
+    assert not (bare / "report.html").exists() and (bare / "run.json").is_file()
+
+
+def test_report_of_a_folder_that_is_no_run_is_a_one_line_error(tmp_path):
+    from typer.testing import CliRunner
+
+    from glmeeg.cli import app
+
+    result = CliRunner().invoke(app, ["report", str(tmp_path)])
+    assert result.exit_code == 2
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and "run.json" in lines[0] and "Traceback" not in result.output
+    assert not (tmp_path / "report.html").exists()
