@@ -110,6 +110,15 @@ def _test_section(t: TestResult) -> str:
                          "points outlined", lambda: figures.statistic_image(t)))
     parts.append(_figure(f"{t.name}: group estimate over time at every channel, significant spans "
                          "marked", lambda: figures.estimate_time_courses(t)))
+    peaks = [c for c in t.clusters if c.significant][:4]
+    if t.axes.frequencies is None:
+        for c in peaks:
+            parts.append(_figure(f"{t.name}: scalp map at the peak of cluster #{c.id} "
+                                 f"({1000 * c.peak_time:.0f} ms)",
+                                 lambda c=c: figures.scalp_map(t, time=c.peak_time)))
+        if not peaks:
+            parts.append(_figure(f"{t.name}: scalp map at the largest statistic",
+                                 lambda: figures.scalp_map(t)))
     if t.axes.frequencies is not None:
         stat = np.nan_to_num(np.abs(t.map("statistic")))
         channel = t.axes.channels[int(np.argmax(stat.reshape(len(t.axes.channels), -1).max(axis=1)))]

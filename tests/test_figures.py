@@ -214,3 +214,47 @@ def test_command_line_does_not_import_matplotlib():
     code = "import sys, glmeeg, glmeeg.cli; print('matplotlib' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
+
+
+@pytest.fixture(scope="module")
+def scalp_result(tmp_path_factory):
+    design = write_study(tmp_path_factory.mktemp("scalp"), effect=2.0, seed=5, n_channels=8,
+                         n_subjects=12, tests=TESTS)
+    return glmeeg.run_analysis(design).test("b-vs-a")
+
+
+def test_scalp_map_peaks_at_the_planted_channel(scalp_result, tmp_path):
+    from glmeeg.sensors import standard_position
+
+    t = scalp_result
+    assert t.map("significant")[1].any()                 # the effect: Cz, samples 2-4
+    fig = figures.scalp_map(t, time=float(t.axes.times[3]), size=(5, 4.6))
+    render(fig, tmp_path)
+    ax = main_axes(fig)
+    assert ax.get_xlabel() == "left - right" and ax.get_ylabel() == "back - front"
+    assert fig.axes[1].get_ylabel().startswith("t")
+    mesh = ax.collections[0]
+    image = np.ma.masked_invalid(mesh.get_array()).reshape(121, 121)
+    iy, ix = np.unravel_index(np.ma.argmax(image), image.shape)
+    # Cz is the vertex: projected to the centre of the disc (azimuthal equidistant). The
+    # interpolated maximum lies at the planted channel's position, within a quarter radius.
+    assert np.allclose(standard_position("Cz"), [0, 0, 1], atol=1e-6)
+    radius = max(abs(ax.get_xlim()[0]) / 1.2, 1.0)
+    centre = np.hypot(*(np.array([ix, iy]) / 120 * 2 * radius - radius))
+    assert centre < 0.25 * radius
+    # The significant sensor is drawn as a white dot (one sensor: Cz).
+    white = [c for c in ax.collections if c.get_label() == "significant"]
+    assert white and len(white[0].get_offsets()) == 1
+
+
+def test_scalp_map_window_and_errors(scalp_result, run, tmp_path):
+    t = scalp_result
+    fig = figures.scalp_map(t, window=(float(t.axes.times[2]), float(t.axes.times[4])))
+    render(fig, tmp_path)
+    assert " ms" in main_axes(fig).get_title()
+    with pytest.raises(GlmeegError, match="not both"):
+        figures.scalp_map(t, time=0.0, window=(0.0, 0.01))
+    with pytest.raises(GlmeegError, match="holds no sample"):
+        figures.scalp_map(t, window=(5.0, 6.0))
+    with pytest.raises(GlmeegError, match="one line"):    # Fz, Cz, Pz, Oz: the midline only
+        figures.scalp_map(run.test("b-vs-a"))
