@@ -515,9 +515,11 @@ def run_analysis(design: str | Path | AnalysisPlan, *,
                       inputs={**plan.study.input_files, **(plan.extra_inputs or {})})
     est = fit_subjects(plan, progress=progress)
     tests = tuple(test_group(plan, t, est, prov=prov, memory_limit=memory_limit) for t in plan.tests)
+    first = plan.study.subject_ids[0]
     return RunResult(design=plan.spec.model_dump(mode="json"), subject_formula=plan.subject_design.formula,
                      subject_columns=plan.subject_design.column_names, subjects=est.summaries,
-                     tests=tests, warnings=plan.warnings, provenance=prov)
+                     tests=tests, warnings=plan.warnings, provenance=prov,
+                     example_design_subject=first, example_design=plan.subject_matrices[first].matrix)
 
 
 def check_assumptions(plan: AnalysisPlan) -> str:

@@ -79,6 +79,12 @@ def _table(frame, *, text_columns=()) -> str:
     return f"<table><tr>{head}</tr>{''.join(rows)}</table>"
 
 
+def _figures():
+    from . import figures
+
+    return figures
+
+
 def _design_section(run: RunResult) -> str:
     import pandas as pd
 
@@ -96,6 +102,13 @@ def _design_section(run: RunResult) -> str:
                            "rows dropped": s.rows_dropped, "residual df": s.df_resid,
                            "condition number": s.condition_number} for s in run.subjects])
     parts.append(_table(frame, text_columns=("subject",)))
+    if run.example_design is not None:
+        who = run.example_design_subject
+        parts.append(_figure(f"subject-level design of {who} ({len(run.example_design)} trials)",
+                             lambda: _figures().design_image(np.asarray(run.example_design),
+                                                             run.subject_columns,
+                                                             title=f"subject design ({who})",
+                                                             row_label="trial")))
     for w in run.warnings:
         parts.append(f'<p class="note">Warning: {_esc(w)}</p>')
     return "\n".join(parts)
@@ -127,7 +140,8 @@ def _test_section(t: TestResult) -> str:
     if t.group_design is not None:
         parts.append(_figure(f"{t.name}: group design ({t.n_subjects} subjects)",
                              lambda: figures.design_image(np.asarray(t.group_design), t.group_columns,
-                                                          title=f"group design of {t.name}")))
+                                                          title=f"group design of {t.name}",
+                                                          row_label="subject")))
     if t.clusters:
         frame = t.clusters_frame()
         parts.append("<h3>Clusters and regions</h3>")

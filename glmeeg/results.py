@@ -706,6 +706,9 @@ class RunResult(_Frozen):
     tests: tuple[TestResult, ...]
     warnings: tuple[str, ...] = ()
     provenance: Provenance
+    # One subject's design matrix (the first subject's), to show what was fitted.
+    example_design_subject: str | None = None
+    example_design: Array | None = None
 
     def test(self, name: str) -> TestResult:
         for t in self.tests:
@@ -718,7 +721,10 @@ class RunResult(_Frozen):
                 "subject_formula": self.subject_formula, "subject_columns": list(self.subject_columns),
                 "subjects": [s.model_dump() for s in self.subjects],
                 "tests": [t.name for t in self.tests], "warnings": list(self.warnings),
-                "provenance": self.provenance.model_dump()}
+                "provenance": self.provenance.model_dump(),
+                "example_design_subject": self.example_design_subject,
+                "example_design": (None if self.example_design is None
+                                   else np.asarray(self.example_design).tolist())}
 
     def __str__(self) -> str:
         used = sum(s.trials_used for s in self.subjects)
@@ -912,7 +918,10 @@ def load_run_result(folder: str | Path) -> RunResult:
                          subject_columns=tuple(meta["subject_columns"]),
                          subjects=tuple(SubjectSummary.model_validate(s) for s in meta["subjects"]),
                          tests=tests, warnings=tuple(meta.get("warnings", ())),
-                         provenance=Provenance.model_validate(meta["provenance"]))
+                         provenance=Provenance.model_validate(meta["provenance"]),
+                         example_design_subject=meta.get("example_design_subject"),
+                         example_design=(None if meta.get("example_design") is None
+                                         else np.asarray(meta["example_design"], dtype=np.float64)))
     except (ValueError, KeyError, TypeError) as e:  # pydantic's ValidationError is a ValueError
         raise GlmeegError(f"{path}: unreadable run summary ({str(e).splitlines()[0]})") from None
 
