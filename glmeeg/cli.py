@@ -299,6 +299,8 @@ def power_command(
                           "groups. Default: --df-numerator + 1.")] = None,
         curve: Annotated[Optional[str], typer.Option("--curve", help="Also print the power at "
                          "these sample sizes, e.g. 16,24,32.")] = None,
+        plot: Annotated[Optional[Path], typer.Option("--plot", help="With --curve: draw the power "
+                        "curve into this PNG file (needs glmeeg[plots]).")] = None,
         from_result: Annotated[Optional[Path], typer.Option("--from", help="Simulate from this saved "
                                "test (a test's folder in a run's output, RESULTS/TEST).")] = None,
         simulations: Annotated[Optional[int], typer.Option("--simulations", help="With --from: "
@@ -331,7 +333,7 @@ def power_command(
     if from_result is not None:
         parametric = {"--design": design, "--effect-size": effect_size, "--power": target_power,
                       "--solve": solve, "--alternative": alternative, "--df-numerator": df_numerator,
-                      "--groups": groups, "--curve": curve}
+                      "--groups": groups, "--curve": curve, "--plot": plot}
         for option, value in parametric.items():
             if value is not None:
                 raise GlmeegError(f"{option}: applies to the parametric calculation, not with --from "
@@ -387,6 +389,14 @@ def power_command(
             raise GlmeegError(f"{_POWER_OPTIONS[name]}: {rest}") from None
         raise
 
+    if plot is not None:
+        if table is None:
+            raise GlmeegError("--plot: draws the power curve; give --curve too (e.g. --curve 12,16,24,32)")
+        from .figures import power_curve_figure
+        from .results import write_figure
+
+        label = "n per group" if solution.design == "two-sample" else "n (participants)"
+        write_figure(power_curve_figure(table, target=solution.power, n_label=label), plot, label="--plot")
     if as_json:
         record = solution.model_dump(mode="json")
         record["warnings"] = list(solution.warnings)

@@ -38,7 +38,7 @@ from .inference.corrections import Correction
 from .spec import TestSpec
 
 __all__ = ["Provenance", "SubjectSummary", "TestResult", "RunResult", "load_result", "load_run",
-           "write_run", "write_table", "check_output_folder", "provenance", "CAUTION",
+           "write_run", "write_table", "write_figure", "check_output_folder", "provenance", "CAUTION",
            "CLINICAL_CAUTION", "read_netcdf", "load_netcdf", "Summary", "summary_schema", "write_text",
            "NETCDF_FORMAT"]
 
@@ -745,6 +745,13 @@ def write_table(frame: pd.DataFrame, path: str | Path, *, label: str | None = No
     """
     path = Path(path)
     return _write_atomically(path, lambda tmp: frame.to_csv(tmp, index=False, float_format="%.10g"),
+                             label=label or str(path))
+
+
+def write_figure(fig, path: str | Path, *, label: str | None = None, dpi: int = 150) -> Path:
+    """Save a matplotlib figure as PNG atomically (see :func:`write_text`)."""
+    path = Path(path)
+    return _write_atomically(path, lambda tmp: fig.savefig(tmp, format="png", dpi=dpi),
                              label=label or str(path))
 
 

@@ -342,3 +342,23 @@ def test_cli_bad_settings_exit_2_with_one_line(args, fragment):
     assert result.stderr.startswith("error: ") and result.stderr.count("\n") == 1
     assert fragment in result.stderr
     assert result.stdout == ""
+
+
+def test_power_curve_plot_is_written_and_needs_a_curve(tmp_path):
+    from matplotlib.image import imread
+    from typer.testing import CliRunner
+
+    from glmeeg.cli import app
+
+    runner = CliRunner()
+    png = tmp_path / "curve.png"
+    args = ["power", "--design", "two-sample", "--effect-size", "0.5", "--power", "0.8"]
+    result = runner.invoke(app, args + ["--curve", "16,32,64,100", "--plot", str(png)])
+    assert result.exit_code == 0, result.output
+    image = imread(png)
+    assert image.shape[0] > 100 and image[..., :3].std() > 0.02
+    result = runner.invoke(app, args + ["--plot", str(tmp_path / "other.png")])
+    assert result.exit_code == 2 and "--curve" in result.stderr
+    assert not (tmp_path / "other.png").exists()
+    result = runner.invoke(app, args + ["--curve", "16,32", "--plot", str(tmp_path / "no" / "x.png")])
+    assert result.exit_code == 2 and len(result.stderr.strip().splitlines()) == 1
