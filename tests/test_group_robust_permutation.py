@@ -180,9 +180,9 @@ def test_random_resamplings_give_phipson_smyth_p_of_the_trimmed_t():
     assert not res.exhaustive and res.n_resamplings == m
     signs, _ = perm.resamplings("sign-flip", n, permutations=m, seed=seed)
     # Our draws, scipy's statistic; Phipson & Smyth (2010): p = (b + 1) / (m + 1).
-    t_obs = abs(trimmed_one_sample_t(x, axis=-1, trim=0.2))
+    observed_t = abs(trimmed_one_sample_t(x, axis=-1, trim=0.2))
     t_null = np.abs(trimmed_one_sample_t(signs * x[None, :], axis=-1, trim=0.2))
-    b = int(np.sum(t_null >= t_obs * (1 - 1e-12)))
+    b = int(np.sum(t_null >= observed_t * (1 - 1e-12)))
     assert res.p_uncorrected[0] == (b + 1) / (m + 1)
     assert 0.001 < res.p_uncorrected[0] < 0.5
 
