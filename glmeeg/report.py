@@ -28,7 +28,9 @@ body { font-family: "DejaVu Sans", "Helvetica Neue", Arial, sans-serif; max-widt
 h1 { font-size: 1.6em; border-bottom: 2px solid #3b4d61; padding-bottom: .2em; }
 h2 { font-size: 1.3em; margin-top: 2em; color: #3b4d61; }
 h3 { font-size: 1.05em; }
-table { border-collapse: collapse; font-size: .9em; margin: .6em 0; }
+table { border-collapse: collapse; font-size: .9em; margin: .6em 0; display: block;
+        max-width: 100%; overflow-x: auto; }
+td.text { max-width: 28em; overflow-wrap: anywhere; }
 th, td { border: 1px solid #c9ced6; padding: .2em .5em; text-align: right; }
 th { background: #eef1f5; }
 td.text, th.text { text-align: left; }
