@@ -118,10 +118,11 @@ def _statistic_label(result: "TestResult") -> str:
     return f"F ({df1:g}, {df2:g} df)"
 
 
-def _colormap(name: str):
+def _colormap(name: str, *, bad: Any = "0.75"):
+    """The colour map ``name`` with non-finite values drawn in ``bad`` (grey by default)."""
     import matplotlib
 
-    return matplotlib.colormaps[name].with_extremes(bad="0.75")
+    return matplotlib.colormaps[name].with_extremes(bad=bad)
 
 
 def _frequency_index(result: "TestResult", frequency: float | None) -> int | None:
@@ -663,9 +664,7 @@ def scalp_map(result: "TestResult | str | Path", *, time: float | None = None,
             raise GlmeegError("scalp map: the sensor positions do not span the scalp (all on one "
                               "line?); a map cannot be interpolated") from None
         image[inside] = spline(np.column_stack([gx[inside], gy[inside]]))
-    import matplotlib
-
-    outside_clear = matplotlib.colormaps[style["cmap"]].with_extremes(bad=(0.0, 0.0, 0.0, 0.0))
+    outside_clear = _colormap(style["cmap"], bad=(0.0, 0.0, 0.0, 0.0))  # off the head: nothing
     mesh = ax.pcolormesh(gx, gy, np.ma.masked_invalid(image), cmap=outside_clear,
                          vmin=style["vmin"], vmax=style["vmax"], shading="auto")
     angle = np.linspace(0, 2 * np.pi, 200)

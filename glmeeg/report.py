@@ -117,8 +117,7 @@ def _design_section(run: RunResult) -> str:
 
 
 def _test_section(t: TestResult) -> str:
-    from . import figures
-
+    figures = _figures()
     parts = [f'<h2 id="test-{_esc(t.name)}">Test {_esc(t.name)}</h2>',
              "<pre class=\"methods\">" + _esc(str(t)) + "</pre>"]
     parts.append(_figure(f"{t.name}: {t.kind} statistic at every channel and time, significant "
