@@ -20,15 +20,14 @@ app = typer.Typer(name="glmeeg", add_completion=False, no_args_is_help=True,
                        "p-values and effect sizes. Research software, not for clinical diagnosis.")
 
 
-# Width of a progress line left open on a terminal; an error first blanks it so that its own
-# line starts clean instead of being glued onto "fitting subjects: 3/28".
-_open_progress = [0]
+# The progress display of the running command, closed before an error line is printed.
+_open_progress: list = [None]
 
 
 def _close_progress() -> None:
-    if _open_progress[0]:
-        typer.echo("\r" + " " * _open_progress[0] + "\r", err=True, nl=False)
-        _open_progress[0] = 0
+    if _open_progress[0] is not None:
+        _open_progress[0].close()
+        _open_progress[0] = None
 
 
 def _reports_errors(fn):
@@ -44,7 +43,7 @@ def _reports_errors(fn):
             raise typer.Exit(2) from None
         except KeyboardInterrupt:
             _close_progress()
-            typer.echo("interrupted; nothing was written", err=True)
+            typer.echo("interrupted; no results were written", err=True)
             raise typer.Exit(130) from None
     return wrapper
 
@@ -63,20 +62,20 @@ def _main(version: Annotated[Optional[bool], typer.Option("--version", callback=
     """glmeeg command line."""
 
 
-def _progress(quiet: bool):
+def _progress(quiet: bool, verbose: bool = False):
+    """The command's progress display (None with --quiet); sets up logging to stderr too."""
+    import sys as real_sys  # the process's own stderr (tests may stand in for ``sys``)
+
+    from .progress import ProgressBars, configure_logging
+
+    stream = real_sys.stderr
+    live = sys.stderr.isatty()
+    bars = ProgressBars(stream, live=live)
+    configure_logging(stream, verbose=verbose, quiet=quiet, console=bars.console if live else None)
     if quiet:
         return None
-
-    live = sys.stderr.isatty()
-
-    def show(subject: str, done: int, total: int) -> None:
-        if live:
-            line = f"fitting subjects: {done}/{total} ({subject})"
-            typer.echo("\r" + line, err=True, nl=done == total)
-            _open_progress[0] = 0 if done == total else len(line)
-        elif done == total:
-            typer.echo(f"fitted {total} subjects", err=True)
-    return show
+    _open_progress[0] = bars
+    return bars
 
 
 @app.command()
@@ -84,15 +83,49 @@ def _progress(quiet: bool):
 def run(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
         out: Annotated[Path, typer.Option("--out", "-o", help="Output folder (created; an earlier "
                                                                "glmeeg result there is replaced).")],
+        workers: Annotated[int, typer.Option("--workers", "-w", min=1, help="Worker processes on this "
+                                             "machine; more than 1 starts a local Dask cluster "
+                                             "(needs glmeeg[dask]).")] = 1,
+        scheduler: Annotated[Optional[str], typer.Option("--scheduler", help="Address of a running Dask "
+                                                         "scheduler to run on (e.g. tcp://10.0.0.5:8786); "
+                                                         "its workers must see the study files at the "
+                                                         "same paths.")] = None,
+        memory_limit: Annotated[Optional[str], typer.Option("--memory-limit", help="Memory budget, e.g. "
+                                                            "4GB or 512MiB (default: half of this "
+                                                            "machine's memory, 1-16 GiB).")] = None,
+        refit: Annotated[bool, typer.Option("--refit", help="Refit every subject, ignoring the fits "
+                                            "cached in OUT/subject-fits.")] = False,
         quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors.")] = False,
+        verbose: Annotated[bool, typer.Option("--verbose", "-v", help="Log each subject fitted or "
+                                              "taken from the cache.")] = False,
         no_report: Annotated[bool, typer.Option("--no-report", help="Do not write report.html.")] = False) -> None:
-    """Fit every subject and run every test of DESIGN; write results (and report.html) to OUT."""
+    """Fit every subject and run every test of DESIGN; write results (and report.html) to OUT.
+
+    Finished subject fits are kept in OUT/subject-fits: a run that was interrupted, or a re-run
+    with other tests, refits only what changed.
+    """
+    from .cache import CACHE_FOLDER
+    from .errors import GlmeegError
+    from .parallel import parse_size
     from .pipeline import plan_analysis, run_analysis
     from .results import check_output_folder, write_run
 
+    limit = None if memory_limit is None else parse_size(memory_limit)
     check_output_folder(out)  # before fitting: a wrong --out should cost nothing
     plan = plan_analysis(design)
-    result = run_analysis(plan, progress=_progress(quiet))
+    made = [p for p in (Path(out), *Path(out).absolute().parents) if not p.exists()]
+    try:
+        result = run_analysis(plan, progress=_progress(quiet, verbose), memory_limit=limit,
+                              workers=workers, scheduler=scheduler, cache=Path(out) / CACHE_FOLDER,
+                              refit=refit)
+    except GlmeegError:
+        for p in made:  # folders the run made for its cache and left empty
+            try:
+                p.rmdir()
+            except OSError:
+                break
+        raise
+    _close_progress()
     write_run(result, out, report=None if no_report else _report(result))
     if not quiet:
         typer.echo(str(result))
@@ -173,6 +206,7 @@ def demo(folder: Annotated[Path, typer.Argument(help="Folder for the demo study 
         typer.echo(f"writing the demo study ({subjects} volunteers) to {folder} ...", err=True)
     design = write_demo_study(folder, n_subjects=subjects, seed=seed)
     result = run_analysis(design, progress=_progress(quiet))
+    _close_progress()
     out = write_run(result, folder / "results", report=_report(result))
     if not quiet:
         typer.echo(str(result))
@@ -486,14 +520,13 @@ def _simulated_power(from_result: Path, *, n: str | None, alpha, simulations, co
 
 
 def _simulation_progress():
-    """A progress line on a terminal (nothing otherwise)."""
+    """Progress bars on a terminal (nothing otherwise)."""
     if not sys.stderr.isatty():
         return None
+    bars = _progress(False)
 
     def show(n: int, done: int, total: int) -> None:
-        line = f"simulating n = {n}: {done}/{total}"
-        typer.echo("\r" + line, err=True, nl=False)
-        _open_progress[0] = len(line)
+        bars(f"simulating n = {n}", done, total)
     return show
 
 

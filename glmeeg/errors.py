@@ -8,7 +8,7 @@ The command-line interface catches these once, prints the line and exits with co
 from __future__ import annotations
 
 __all__ = ["GlmeegError", "DesignFileError", "StudyError", "FormulaError", "ContrastError",
-           "ModelError"]
+           "ModelError", "ExecutionError"]
 
 
 class GlmeegError(ValueError):
@@ -37,3 +37,8 @@ class ContrastError(GlmeegError):
 
 class ModelError(GlmeegError):
     """The model cannot be estimated with these data (too few subjects, no residual df ...)."""
+
+
+class ExecutionError(GlmeegError):
+    """The work cannot be run as asked: an unreachable scheduler, workers that die on every try,
+    a memory budget too small for the work."""

@@ -8,6 +8,7 @@ EEG data beyond the array headers, so every input error surfaces before any fitt
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 from dataclasses import dataclass
 from pathlib import Path
@@ -16,7 +17,8 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from .errors import ModelError, StudyError
+from .cache import FitCache
+from .errors import ExecutionError, GlmeegError, ModelError, StudyError
 from .formula import ContrastMatrix, Design, DesignMatrix, build_design, contrast_matrix, design_matrix
 from .group_level import group_test
 from .findings import describe_clusters, significant_regions
@@ -24,7 +26,9 @@ from .inference.corrections import PERMUTATION_METHODS, adjust_p
 from .results import Provenance, Resampling, RunResult, SubjectSummary, TestResult, provenance
 from .spec import DesignSpec, TestSpec, load_design
 from .study import Study, read_study
-from .subject_level import fit_ols
+from .parallel import Backend, Progress
+from .subject_jobs import SubjectJob
+from .subject_level import small_product
 
 __all__ = ["TestPlan", "AnalysisPlan", "SubjectEstimates", "plan_analysis", "fit_subjects",
            "test_group", "run_analysis"]
@@ -247,65 +251,149 @@ class SubjectEstimates:
     summaries: tuple[SubjectSummary, ...]
 
 
-def fit_subjects(plan: AnalysisPlan, *, progress: Callable[[str, int, int], None] | None = None) -> SubjectEstimates:
-    """Fit the subject model at every point of every subject, one subject at a time.
+def subject_jobs(plan: AnalysisPlan, *, hashes: dict[str, str] | None = None) -> list[SubjectJob]:
+    """One :class:`~glmeeg.subject_jobs.SubjectJob` per subject, in analysis order.
 
-    Only the contrast estimates the tests need are kept, so memory stays near one subject's
-    data plus ``n_subjects x n_contrast_rows x n_points`` values.
-
-    Raises
-    ------
-    StudyError
-        A subject's data hold NaN or Inf in the epochs used.
+    ``hashes`` are the SHA-256 of the input files (``Provenance.input_sha256``); they enter the
+    jobs' cache keys.
     """
     st = plan.study
+    sm = plan.spec.subject_model
+    robust = None
+    if sm.robust is not None:
+        robust = {"norm": sm.robust, **{k: v for k, v in (("tuning", sm.robust_tuning),
+                                                           ("max_iterations", sm.robust_max_iterations),
+                                                           ("tolerance", sm.robust_tolerance),
+                                                           ("convergence", sm.robust_convergence),
+                                                           ("scale_constant", sm.robust_scale_constant))
+                                        if v is not None}}
+    jobs = []
+    for s in st.subject_ids:
+        X = plan.subject_matrices[s]
+        trials = st.subject_trials(s)
+        jobs.append(SubjectJob(subject=s, path=str(st.epoch_files[s]), label=st.epoch_label(s),
+                               epochs=trials["epoch"].to_numpy()[X.kept].astype(np.int64),
+                               design=np.asarray(X.matrix, dtype=np.float64), n_points=st.axes.n_points,
+                               itemsize=st.epoch_itemsizes.get(s, 8),
+                               weights=_trial_weights(plan, trials, X, s), robust=robust,
+                               data_sha256=(hashes or {}).get(f"epochs:{s}", "")))
+    return jobs
+
+
+def _contrast_rows(plan: AnalysisPlan) -> tuple[np.ndarray, dict[str, slice]]:
     C = np.vstack([t.subject_contrast.matrix for t in plan.tests])
     rows, start = {}, 0
     for t in plan.tests:
         rows[t.spec.name] = slice(start, start + t.subject_contrast.n_rows)
         start += t.subject_contrast.n_rows
-    out = np.empty((len(st.subject_ids), C.shape[0], st.axes.n_points))
-    summaries = []
-    for i, s in enumerate(st.subject_ids):
-        X = plan.subject_matrices[s]
-        trials = st.subject_trials(s)
-        epochs = trials["epoch"].to_numpy()[X.kept]
-        Y = st.read_epochs(s, epochs)
-        weights = _trial_weights(plan, trials, X, s)
-        robust_info = {}
-        sm = plan.spec.subject_model
-        if sm.robust is not None:
-            from .robust import fit_robust
-            options = {k: v for k, v in (("tuning", sm.robust_tuning),
-                                          ("max_iterations", sm.robust_max_iterations),
-                                          ("tolerance", sm.robust_tolerance),
-                                          ("convergence", sm.robust_convergence),
-                                          ("scale_constant", sm.robust_scale_constant))
-                       if v is not None}
-            fit = fit_robust(X.matrix, Y, norm=sm.robust, weights=weights, **options)
-            robust_info = {"robust_iterations_max": int(fit.iterations.max()),
-                           "robust_unconverged_points": int((~fit.converged).sum())}
-        elif weights is not None:
-            keep = weights > 0
-            root = np.sqrt(weights[keep])
-            fit = fit_ols(X.matrix[keep] * root[:, None], np.asarray(Y[keep], dtype=np.float64) * root[:, None])
-        else:
-            fit = fit_ols(X.matrix, Y)
-        bad = ~np.isfinite(fit.betas).all(axis=0)
-        if bad.any():
-            cols = np.flatnonzero(bad)[:1000]
-            ep = np.unique(epochs[np.flatnonzero(~np.isfinite(Y[:, cols]).all(axis=1))])
-            raise StudyError(f"subject {s}: {st.epoch_label(s)} holds NaN or Inf values in epoch(s) "
-                             f"{', '.join(map(str, ep[:10]))}{' ...' if len(ep) > 10 else ''}; "
-                             "remove those epochs from the trials table or repair the data")
-        out[i] = C @ fit.betas
-        summaries.append(SubjectSummary(subject=s, epochs_in_file=st.epoch_counts[s],
-                                        trials_listed=len(trials), trials_used=int(X.kept.sum()),
-                                        rows_dropped=X.n_dropped, df_resid=fit.df_resid,
-                                        condition_number=X.condition_number, **robust_info))
-        log.debug("subject %s fitted: %d trials", s, X.kept.sum())
+    return C, rows
+
+
+def check_memory(plan: AnalysisPlan, jobs: list[SubjectJob], memory_limit: int) -> None:
+    """Refuse a memory budget too small for one subject's fit or for the group data.
+
+    Raises
+    ------
+    ExecutionError
+        Naming the subject (or the group data), what it needs and the budget.
+    """
+    from .parallel import format_size
+    from .subject_jobs import job_memory
+
+    n_rows = sum(t.subject_contrast.n_rows for t in plan.tests)
+    group = len(jobs) * n_rows * plan.study.axes.n_points * 8
+    for j in jobs:
+        need = job_memory(j)
+        if need + group > memory_limit:
+            raise ExecutionError(f"subject {j.subject}: its fit needs about {format_size(need)} "
+                                 f"({len(j.epochs)} trials x {j.n_points} points) next to "
+                                 f"{format_size(group)} of group data, above the memory limit of "
+                                 f"{format_size(memory_limit)}; raise --memory-limit")
+
+
+def fit_subjects(plan: AnalysisPlan, *, backend: Backend | None = None, cache: FitCache | None = None,
+                 refit: bool = False, hashes: dict[str, str] | None = None,
+                 progress: Progress | None = None, memory_limit: int | None = None) -> SubjectEstimates:
+    """Fit the subject model at every point of every subject.
+
+    Each subject is one job (:mod:`glmeeg.subject_jobs`) that reads its own epoch file; the
+    backend runs the jobs (in this process by default, else on Dask workers). Only the
+    contrast estimates the tests need are kept, so memory stays near one subject's data per
+    worker plus ``n_subjects x n_contrast_rows x n_points`` values.
+
+    Parameters
+    ----------
+    plan : AnalysisPlan
+    backend : Backend, optional
+        Where the jobs run (:func:`glmeeg.parallel.open_backend`); default: this process.
+    cache : FitCache, optional
+        Finished fits are taken from it and every new fit is stored in it as soon as it is done,
+        so an interrupted run resumes where it stopped.
+    refit : bool, default False
+        Ignore the cache's entries (new fits still replace them).
+    hashes : dict, optional
+        SHA-256 of the input files (``Provenance.input_sha256``): needed with ``cache``.
+    progress : callable, optional
+        ``progress("fitting subjects", done, total)``.
+    memory_limit : int, optional
+        Bytes; default :func:`glmeeg.parallel.default_memory_limit`.
+
+    Raises
+    ------
+    StudyError
+        A subject's data hold NaN or Inf in the epochs used.
+    ExecutionError
+        The memory limit is too small for a subject, or workers died on every try.
+    """
+    from .parallel import InProcess, default_memory_limit
+    from .subject_jobs import run_subject_job
+
+    if cache is not None and hashes is None:
+        raise ValueError("a cache needs the input files' hashes (hashes=provenance.input_sha256)")
+    st = plan.study
+    jobs = subject_jobs(plan, hashes=hashes)
+    check_memory(plan, jobs, memory_limit or default_memory_limit())
+    C, rows = _contrast_rows(plan)
+    out = np.empty((len(jobs), C.shape[0], st.axes.n_points))
+    facts: list = [None] * len(jobs)
+    task = "fitting subjects"
+
+    def keep(i, fit) -> None:
+        out[i] = small_product(C, fit.betas)
+        facts[i] = dataclasses.replace(fit, betas=np.empty((0, 0)))  # the betas are not needed again
+
+    for i, job in enumerate(jobs):
+        fit = None if (cache is None or refit) else cache.load(job.key, subject=job.subject)
+        if fit is not None:
+            keep(i, fit)
+            log.info("subject %s: fit taken from the cache", job.subject)
+    pending = [i for i in range(len(jobs)) if facts[i] is None]
+    done = [len(jobs) - len(pending)]
+    if progress:
+        progress(task, done[0], len(jobs))
+
+    def on_result(k: int, fit) -> None:
+        i = pending[k]
+        if cache is not None:
+            cache.store(jobs[i].key, fit)
+        keep(i, fit)
+        done[0] += 1
+        log.info("subject %s fitted: %d trials", fit.subject, len(jobs[i].epochs))
         if progress:
-            progress(s, i + 1, len(st.subject_ids))
+            progress(task, done[0], len(jobs))
+
+    (backend or InProcess()).map(run_subject_job, [jobs[i] for i in pending],
+                                 labels=[f"subject {jobs[i].subject}" for i in pending], on_result=on_result)
+    if cache is not None:
+        cache.prune({j.key for j in jobs})  # fits of earlier designs or data are not needed again
+    summaries = []
+    for job, fit in zip(jobs, facts):
+        X = plan.subject_matrices[job.subject]
+        summaries.append(SubjectSummary(subject=job.subject, epochs_in_file=st.epoch_counts[job.subject],
+                                        trials_listed=len(st.subject_trials(job.subject)),
+                                        trials_used=int(X.kept.sum()), rows_dropped=X.n_dropped,
+                                        df_resid=fit.df_resid, condition_number=X.condition_number,
+                                        **fit.summary_fields()))
     return SubjectEstimates(subjects=st.subject_ids, estimates=out, rows=rows, summaries=tuple(summaries))
 
 
@@ -397,8 +485,17 @@ def _residual_checks(Y: np.ndarray, test: TestPlan, notes: list) -> dict:
 
 
 def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, *,
-               prov: Provenance, memory_limit: int = 512 * 2**20) -> TestResult:
-    """Run one test at the group level and apply its correction."""
+               prov: Provenance, memory_limit: int | None = None, backend: Backend | None = None,
+               progress: Progress | None = None) -> TestResult:
+    """Run one test at the group level and apply its correction.
+
+    Permutation corrections run their resamplings on ``backend`` (default: this process) in
+    batches sized from ``memory_limit`` (default :func:`glmeeg.parallel.default_memory_limit`),
+    reporting ``progress(f"test {name}: resamplings", done, total)``.
+    """
+    from .parallel import default_memory_limit
+
+    memory_limit = memory_limit or default_memory_limit()
     idx = [estimates.subjects.index(s) for s in test.subjects]
     Y = estimates.estimates[idx][:, estimates.rows[test.spec.name], :]
     if test.spec.group_method == "trimmed":
@@ -431,7 +528,8 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
                                 kind=stats.kind, df=stats.df, alternative=test.spec.alternative,
                                 correction=correction, graph=plan.graph, method=test.spec.group_method,
                                 trim=0.2 if test.spec.trim is None else test.spec.trim,
-                                memory_limit=memory_limit)
+                                memory_limit=memory_limit, backend=backend, progress=progress,
+                                task=f"test {test.spec.name}: resamplings")
         p_corr = perm.p_corrected
         significant = np.nan_to_num(p_corr, nan=1.0) <= alpha
         labels, p_by_id, kind = None, {}, "region"
@@ -486,9 +584,9 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
                       subject_estimates=Y, group_design=test.group_matrix.matrix, **extra)
 
 
-def run_analysis(design: str | Path | AnalysisPlan, *,
-                 progress: Callable[[str, int, int], None] | None = None,
-                 memory_limit: int = 512 * 2**20) -> RunResult:
+def run_analysis(design: str | Path | AnalysisPlan, *, progress: Progress | None = None,
+                 memory_limit: int | str | None = None, workers: int = 1, scheduler: str | None = None,
+                 client=None, cache: str | Path | FitCache | None = None, refit: bool = False) -> RunResult:
     """Run every test of a design file.
 
     Parameters
@@ -496,25 +594,64 @@ def run_analysis(design: str | Path | AnalysisPlan, *,
     design : str, Path or AnalysisPlan
         A design file, or a plan from :func:`plan_analysis`.
     progress : callable, optional
-        Called as ``progress(subject, done, total)`` after each subject's fit.
-    memory_limit : int, default 512 MiB
-        Bound on the memory of one batch of resampled maps in permutation tests.
+        Called as ``progress(task, done, total)``: ``"fitting subjects"`` after each subject's
+        fit, ``"test NAME: resamplings"`` as permutation batches finish.
+    memory_limit : int or str, optional
+        Memory budget of the run in bytes (or a size such as ``"2GB"``): checked against each
+        subject's fit and the group data before any fitting, and used to size the batches of
+        resampled maps. Default: half of this machine's memory, between 1 and 16 GiB.
+    workers : int, default 1
+        1 runs everything in this process (numba uses every core); more starts a local Dask
+        cluster of that many worker processes for the run.
+    scheduler : str, optional
+        Address of an existing Dask scheduler to run on (``tcp://host:8786``). The workers must
+        see the study's files at the same paths.
+    client : distributed.Client, optional
+        An existing Dask client to run on (left open).
+    cache : str, Path or FitCache, optional
+        Folder of the subject-fit cache (the CLI uses ``OUT/subject-fits``). Finished fits are
+        reused, new ones stored as they finish, so an interrupted run resumes. A run that fails
+        on an input error removes the entries it added.
+    refit : bool, default False
+        Refit every subject even when the cache holds its fit.
 
     Returns
     -------
     RunResult
-        Save it with :func:`glmeeg.write_run`.
+        Save it with :func:`glmeeg.write_run`. The same inputs and seeds give bitwise the same
+        result for any backend and number of workers.
+
+    Raises
+    ------
+    ExecutionError
+        The scheduler cannot be reached, workers died on every try, or the memory limit is too
+        small for a subject.
 
     Examples
     --------
-    >>> run = run_analysis("study/design.toml")            # doctest: +SKIP
-    >>> print(run.test("urgency-high-vs-low"))             # doctest: +SKIP
+    >>> run = run_analysis("study/design.toml", workers=2)   # doctest: +SKIP
+    >>> print(run.test("urgency-high-vs-low"))              # doctest: +SKIP
     """
+    from .parallel import default_memory_limit, open_backend, parse_size
+
+    limit = default_memory_limit() if memory_limit is None else parse_size(memory_limit)
     plan = design if isinstance(design, AnalysisPlan) else plan_analysis(design)
+    if cache is not None and not isinstance(cache, FitCache):
+        cache = FitCache(cache)
+    check_memory(plan, subject_jobs(plan), limit)
     prov = provenance(design_file=plan.design_file,
                       inputs={**plan.study.input_files, **(plan.extra_inputs or {})})
-    est = fit_subjects(plan, progress=progress)
-    tests = tuple(test_group(plan, t, est, prov=prov, memory_limit=memory_limit) for t in plan.tests)
+    before = cache.keys() if cache is not None else set()
+    try:
+        with open_backend(workers=workers, scheduler=scheduler, client=client) as backend:
+            est = fit_subjects(plan, backend=backend, cache=cache, refit=refit, hashes=prov.input_sha256,
+                               progress=progress, memory_limit=limit)
+            tests = tuple(test_group(plan, t, est, prov=prov, memory_limit=limit, backend=backend,
+                                     progress=progress) for t in plan.tests)
+    except GlmeegError:
+        if cache is not None:  # an input error leaves the output folder as it was
+            cache.rollback(before)
+        raise
     first = plan.study.subject_ids[0]
     return RunResult(design=plan.spec.model_dump(mode="json"), subject_formula=plan.subject_design.formula,
                      subject_columns=plan.subject_design.column_names, subjects=est.summaries,

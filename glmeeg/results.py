@@ -862,7 +862,10 @@ def check_output_folder(out: str | Path) -> Path:
         if not out.is_dir():
             raise GlmeegError(f"{out}: exists and is not a folder; expected a new folder or an "
                               "earlier glmeeg result folder")
-        if any(out.iterdir()) and not (out / "run.json").is_file():
+        from .cache import CACHE_FOLDER
+
+        held = {p.name for p in out.iterdir()}
+        if held and "run.json" not in held and held != {CACHE_FOLDER}:
             raise GlmeegError(f"{out}: folder is not empty and holds no glmeeg result; choose a new "
                               "or empty output folder")
     parent = out.absolute().parent
@@ -880,7 +883,7 @@ def write_run(run: RunResult, out: str | Path, *, report: str | None = None) -> 
 
     Everything is written into a temporary folder next to ``out`` and renamed into place at the
     end, so a failed run leaves no partial folder and an earlier result at ``out`` stays intact
-    until the new one is complete.
+    until the new one is complete. The subject-fit cache ``out/subject-fits`` is carried over.
 
     Raises
     ------
@@ -900,9 +903,13 @@ def write_run(run: RunResult, out: str | Path, *, report: str | None = None) -> 
         if report is not None:
             (tmp / "report.html").write_text(report, encoding="utf-8")
         if out.exists():
+            from .cache import CACHE_FOLDER
+
             old = out.with_name(f".{out.name}.{os.getpid()}.old")
             os.replace(out, old)
             os.replace(tmp, out)
+            if (old / CACHE_FOLDER).is_dir():  # the subject-fit cache stays with the results
+                os.replace(old / CACHE_FOLDER, out / CACHE_FOLDER)
             shutil.rmtree(old, ignore_errors=True)
         else:
             os.replace(tmp, out)

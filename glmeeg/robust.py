@@ -123,7 +123,9 @@ class RobustFit:
 
     def contrast(self, c: np.ndarray) -> np.ndarray:
         """Contrast estimates ``c @ betas``: ``(rows, n_points)`` for a ``(rows, n_columns)`` c."""
-        return np.atleast_2d(c) @ self.betas
+        from .subject_level import small_product
+
+        return small_product(np.atleast_2d(np.asarray(c, dtype=np.float64)), self.betas)
 
     def contrast_variance(self, c: np.ndarray) -> np.ndarray:
         """H1 variance of each contrast row at every point: ``(rows, n_points)``."""
@@ -358,7 +360,9 @@ def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: flo
                 _REFRESH_CHANGE, scale_constant, _PIVOT_FLOOR, _BAND_START, _BAND_FIRST,
                 min(_BAND_MAX, _BAND_TRIALS / (0.86 * rows.size)), _BAND_MAX)
     _run_blocks(Y, settings, out)
-    out["betas"] = M @ out["betas"]
+    from .subject_level import small_product
+
+    out["betas"] = small_product(M, out["betas"])
     out["xtx_inv"] = (M @ r_inv) @ (M @ r_inv).T
     for value in out.values():
         value.setflags(write=False)

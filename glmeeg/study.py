@@ -20,7 +20,7 @@ from .axes import Axes
 from .errors import StudyError
 from .spec import DataSpec
 
-__all__ = ["Study", "read_neighbour_table", "read_study", "read_table"]
+__all__ = ["Study", "read_epoch_file", "read_neighbour_table", "read_study", "read_table"]
 
 _SAFE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$")
 
@@ -85,6 +85,8 @@ class Study:
     input_files : dict
         Label -> path of every file the study reads (for provenance).
     warnings : tuple of str
+    epoch_itemsizes : dict
+        Subject -> bytes per value of its epoch array (4 for float32, 8 for float64).
     """
 
     root: Path
@@ -97,6 +99,7 @@ class Study:
     epoch_counts: dict[str, int]
     input_files: dict[str, Path]
     warnings: tuple[str, ...] = field(default=())
+    epoch_itemsizes: dict[str, int] = field(default_factory=dict)
 
     def subject_trials(self, subject: str) -> pd.DataFrame:
         """The trials-table rows of one subject, in table order."""
@@ -111,11 +114,25 @@ class Study:
         The array keeps its on-disk dtype (float32 or float64); conversion to float64 happens
         block by block in the fit.
         """
-        arr = _open_epochs(self.epoch_files[subject], subject, self.epoch_label(subject))
-        data = np.asarray(arr[np.asarray(epochs, dtype=np.intp)])
-        if not data.dtype.isnative:  # arrays written on a big-endian machine
-            data = data.astype(data.dtype.newbyteorder("="))
-        return data.reshape(data.shape[0], -1)
+        return read_epoch_file(self.epoch_files[subject], epochs, subject=subject,
+                               label=self.epoch_label(subject))
+
+
+def read_epoch_file(path: str | Path, epochs: np.ndarray, *, subject: str, label: str) -> np.ndarray:
+    """Epochs ``epochs`` of one epoch file as ``(len(epochs), n_points)``, in the file's dtype.
+
+    The file is memory-mapped. When every epoch is used in file order the mapping itself is
+    returned (nothing is copied: the fit streams it from disk); otherwise the chosen epochs are
+    copied out.
+    """
+    arr = _open_epochs(Path(path), subject, label)
+    idx = np.asarray(epochs, dtype=np.intp)
+    if arr.dtype.isnative and idx.size == arr.shape[0] and np.array_equal(idx, np.arange(idx.size)):
+        return arr.reshape(arr.shape[0], -1)
+    data = np.asarray(arr[idx])
+    if not data.dtype.isnative:  # arrays written on a big-endian machine
+        data = data.astype(data.dtype.newbyteorder("="))
+    return data.reshape(data.shape[0], -1)
 
 
 def _relative(path: Path, root: Path) -> str:
@@ -277,12 +294,14 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
 
     epoch_files: dict[str, Path] = {}
     counts: dict[str, int] = {}
+    itemsizes: dict[str, int] = {}
     shape0: tuple[int, ...] | None = None
     first = ""
     for s in order:
         path = _resolve(root, spec.epochs.format(subject=s))
         label = _relative(path, root)
         arr = _epoch_header(path, s, label)
+        itemsizes[s] = int(np.dtype(arr.dtype).itemsize)
         if arr.ndim not in (3, 4):
             raise StudyError(f"subject {s}: {label} has {arr.ndim} dimensions; expected 3 (epochs, "
                              "channels, times) or 4 (epochs, channels, frequencies, times)")
@@ -341,7 +360,7 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
                 frequencies=tuple(spec.frequencies) if spec.frequencies is not None else None)
     return Study(root=root, trials=trials, subjects=subjects, sensors=sensors, axes=axes,
                  subject_ids=tuple(order), epoch_files=epoch_files, epoch_counts=counts,
-                 input_files=files, warnings=tuple(warnings))
+                 input_files=files, warnings=tuple(warnings), epoch_itemsizes=itemsizes)
 
 
 def read_neighbour_table(path: str | Path, *, label: str) -> pd.DataFrame:

@@ -21,7 +21,7 @@ import scipy.linalg
 
 from .errors import ModelError
 
-__all__ = ["OLSFit", "fit_ols", "BLOCK_POINTS"]
+__all__ = ["OLSFit", "fit_ols", "small_product", "BLOCK_POINTS"]
 
 # Points per block of work for a thread: the block's float64 accumulators (columns + 2 rows of
 # BLOCK_POINTS values) stay in L1/L2 while the trials stream past.
@@ -55,7 +55,17 @@ class OLSFit:
 
     def contrast(self, c: np.ndarray) -> np.ndarray:
         """Contrast estimates ``c @ betas``: ``(rows, n_points)`` for a ``(rows, n_columns)`` c."""
-        return np.atleast_2d(c) @ self.betas
+        return small_product(np.atleast_2d(np.asarray(c, dtype=np.float64)), self.betas)
+
+
+def small_product(A: np.ndarray, B: np.ndarray) -> np.ndarray:
+    """``A @ B`` for a small ``A`` (rows x p) and a wide ``B`` (p x points), summed over p in
+    a fixed order point by point, so the bits do not depend on BLAS's threads or blocking."""
+    out = np.zeros((A.shape[0], B.shape[1]))
+    for j in range(A.shape[0]):
+        for k in range(A.shape[1]):
+            out[j] += A[j, k] * B[k]
+    return out
 
 
 def _constant_column(X: np.ndarray) -> int | None:
@@ -143,7 +153,7 @@ def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS) -
             ss[redo] = residual_sum_squares(Y, np.ascontiguousarray(Q), proj, redo, shift)
         if shift:  # projections of the unshifted data
             proj += np.outer(Q.sum(axis=0), np.asarray(Y[0], dtype=np.float64))
-        betas = to_betas @ proj
+        betas = small_product(to_betas, proj)
     xtx_inv = to_betas @ to_betas.T
     df = n - p
     return OLSFit(betas=betas, residual_variance=ss / df, df_resid=df, xtx_inv=xtx_inv)

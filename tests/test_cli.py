@@ -65,7 +65,8 @@ def test_run_writes_one_folder_per_test(design, tmp_path):
     run = json.loads((out / "run.json").read_text())
     assert run["tests"] == TEST_NAMES
     assert [s["subject"] for s in run["subjects"]] == [f"s{i:02d}" for i in range(1, 9)]
-    assert sorted(p.name for p in out.iterdir()) == sorted(["run.json", "report.html"] + TEST_NAMES)
+    assert sorted(p.name for p in out.iterdir()) == sorted(["run.json", "report.html", "subject-fits"]
+                                                           + TEST_NAMES)
     for name in TEST_NAMES:
         points = pd.read_csv(out / name / "points.csv")
         assert set(POINT_COLUMNS) <= set(points.columns), points.columns
@@ -168,7 +169,7 @@ def test_rerun_replaces_the_earlier_result(design, tmp_path):
     result = invoke("run", design, "--out", out, "-q")
     assert result.exit_code == 0, result.output
     assert sorted(p.name for p in out.iterdir()) == sorted(["run.json", "report.html", "b-minus-a", "condition",
-                                                            "intensity-by-group"])
+                                                            "intensity-by-group", "subject-fits"])
     assert json.loads((out / "run.json").read_text())["tests"][0] == "b-minus-a"
     assert sorted(p.name for p in tmp_path.iterdir()) == ["out", "study"]
 

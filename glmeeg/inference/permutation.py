@@ -52,12 +52,13 @@ import numpy as np
 import scipy.linalg
 import scipy.stats
 
-from ..errors import ModelError
+from ..errors import ExecutionError, ModelError
 from ..group_level import group_arrays
 from ..subject_level import _conditioning
 from .corrections import TFCE, ClusterMass, MaxStatistic
 
-__all__ = ["BLOCK", "PermutationResult", "choose_resampling", "resamplings", "permutation_test",
+__all__ = ["BLOCK", "PermutationResult", "choose_resampling", "resamplings", "random_block",
+           "null_chunk", "permutation_test",
            "cluster_forming_threshold"]
 
 # Resamplings per child seed stream.
@@ -168,16 +169,23 @@ def resamplings(scheme: Scheme, n: int, *, permutations: int, seed: int) -> tupl
             bits = (k >> np.arange(n, dtype=np.int64)[None, :]) & 1
             return (1 - 2 * bits).astype(np.int8), True
         return np.array(list(itertools.permutations(range(n))), dtype=np.int32), True
-    children = np.random.SeedSequence(seed).spawn((permutations + BLOCK - 1) // BLOCK)
-    blocks = []
-    for j, child in enumerate(children):
-        rng = np.random.default_rng(child)
-        count = min(BLOCK, permutations - j * BLOCK)
-        if scheme == "sign-flip":
-            blocks.append((1 - 2 * rng.integers(0, 2, size=(count, n))).astype(np.int8))
-        else:
-            blocks.append(np.argsort(rng.random((count, n)), axis=1, kind="stable").astype(np.int32))
+    n_blocks = (permutations + BLOCK - 1) // BLOCK
+    blocks = [random_block(scheme, n, seed=seed, block=j, count=min(BLOCK, permutations - j * BLOCK))
+              for j in range(n_blocks)]
     return np.concatenate(blocks), False
+
+
+def random_block(scheme: Scheme, n: int, *, seed: int, block: int, count: int = BLOCK) -> np.ndarray:
+    """Resamplings ``block * BLOCK`` to ``block * BLOCK + count`` of a test's random draw.
+
+    Block ``j`` comes from the ``j``-th child of ``SeedSequence(seed)`` (the child that
+    ``SeedSequence(seed).spawn(...)[j]`` gives), so any worker can make its own blocks and the
+    whole draw is the same however it is split.
+    """
+    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(block,)))
+    if scheme == "sign-flip":
+        return (1 - 2 * rng.integers(0, 2, size=(count, n))).astype(np.int8)
+    return np.argsort(rng.random((count, n)), axis=1, kind="stable").astype(np.int32)
 
 
 def cluster_forming_threshold(kind: str, df: tuple[float, float], alternative: str) -> float:
@@ -300,13 +308,80 @@ def _at_least(null: np.ndarray, observed: np.ndarray) -> np.ndarray:
     return s.size - np.searchsorted(s, edge, side="left")
 
 
+@dataclass(frozen=True)
+class _NullWork:
+    """What every resampling task shares: the engine (the reduced group data) and settings."""
+
+    engine: object
+    edge: np.ndarray
+    mode: int
+    sign: float
+    method: str
+    correction: object
+    graph: tuple | None
+    threshold: float | None
+    two_tails: bool
+    batch: int
+    scheme: str
+    n: int
+    seed: int
+
+
+def _batch_max(work: _NullWork, maps: np.ndarray, best: np.ndarray) -> np.ndarray:
+    """Each map's maximum of the corrected statistic (``maps`` hold ``sign * statistic`` with
+    non-finite values set to 0, as :func:`glmeeg.kernels.scan_maps` leaves them)."""
+    c = work.correction
+    if work.method == "max":
+        return best
+    indptr, indices = work.graph
+    if work.method == "cluster":
+        from .clusters import max_cluster_statistic
+        both = max_cluster_statistic(maps, indptr, indices, work.threshold, statistic=c.statistic,
+                                     tails="both" if work.two_tails else "positive")
+    else:
+        from .tfce import max_tfce
+        both = max_tfce(maps, indptr, indices, extent_exponent=c.extent_exponent,
+                        height_exponent=c.height_exponent)
+    return both.max(axis=1) if work.two_tails else both[:, 0]
+
+
+def null_chunk(work: _NullWork, item: tuple) -> tuple[np.ndarray, np.ndarray]:
+    """One task of a permutation test: resamplings ``start`` to ``stop``.
+
+    Returns the number of them at least as extreme as the observed statistic at every point
+    (int64) and the maximum statistic of each. Random resamplings are drawn here from their seed
+    blocks (``start`` is a multiple of :data:`BLOCK`); exhaustive ones come with the item.
+    """
+    from ..kernels import scan_maps
+
+    start, stop, given = item
+    if given is not None:
+        rows = given
+    else:
+        rows = np.concatenate([random_block(work.scheme, work.n, seed=work.seed, block=j,
+                                            count=min(BLOCK, stop - j * BLOCK))
+                               for j in range(start // BLOCK, -(-stop // BLOCK))])
+    P = work.edge.size
+    counts = np.zeros(P, dtype=np.int64)
+    null = np.empty(rows.shape[0])
+    hits = np.empty((min(work.batch, rows.shape[0]), P), dtype=np.int8)
+    for a in range(0, rows.shape[0], work.batch):
+        maps = np.ascontiguousarray(work.engine.statistics(rows[a:a + work.batch]))
+        h = hits[:maps.shape[0]]
+        best = scan_maps(maps, work.edge, work.mode, work.sign, h)
+        counts += h.sum(axis=0, dtype=np.int64)
+        null[a:a + work.batch] = _batch_max(work, maps, best)
+    return counts, null
+
+
 def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, *,
                      kind: Literal["t", "F"], df: tuple[float, float],
                      alternative: str = "two-sided",
                      correction: MaxStatistic | ClusterMass | TFCE,
                      graph: tuple[np.ndarray, np.ndarray] | None = None,
                      method: Literal["glm", "trimmed", "welch"] = "glm", trim: float = 0.2,
-                     memory_limit: int = 512 * 2**20) -> PermutationResult:
+                     memory_limit: int = 512 * 2**20, backend=None, progress=None,
+                     task: str = "resamplings") -> PermutationResult:
     """Family-wise corrected p-values at every point by sign-flipping or permutation.
 
     Parameters
@@ -341,6 +416,14 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
         Share trimmed from each tail (``method="trimmed"`` only).
     memory_limit : int, default 512 MiB
         Bound on the memory of one batch of resampled maps.
+    backend : glmeeg.parallel.Backend, optional
+        Where the resampling tasks run (default: this process). The engine (the reduced group
+        data) is shipped to the workers once; each task draws its own seed blocks. The result
+        is bitwise the same for every backend and number of workers.
+    progress : callable, optional
+        ``progress(task, done, total)`` as resamplings finish.
+    task : str, default "resamplings"
+        Name of the work in progress reports and error messages.
 
     Returns
     -------
@@ -376,7 +459,11 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
         engine = _Engine(Y, G, L, scheme)
     else:
         engine = _robust_engine(Y, G, L, scheme, kind=kind, method=method, trim=trim)
-    rows, exhaustive = resamplings(scheme, n, permutations=correction.permutations, seed=correction.seed)
+    exhaustive = (2 ** n if scheme == "sign-flip" else math.factorial(n)) <= correction.permutations
+    if exhaustive:
+        rows, _ = resamplings(scheme, n, permutations=correction.permutations, seed=correction.seed)
+    else:  # the workers draw their own blocks; only the count is needed here
+        rows = np.empty((correction.permutations, 0))
     identity = (np.ones((1, n), dtype=np.int8) if scheme == "sign-flip"
                 else np.arange(n, dtype=np.int32)[None, :])
     observed = engine.statistics(identity)[0]
@@ -394,38 +481,38 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
 
     mode = 1 if (kind == "F" or alternative == "greater") else (2 if alternative == "less" else 0)
 
-    def batch_max(maps: np.ndarray, best: np.ndarray) -> np.ndarray:
-        # ``maps`` hold sign * statistic with non-finite values set to 0 (see scan_maps).
-        if correction.method == "max":
-            return best
-        if correction.method == "cluster":
-            from .clusters import max_cluster_statistic
-            both = max_cluster_statistic(maps, indptr, indices, threshold,
-                                         statistic=correction.statistic,
-                                         tails="both" if two_tails else "positive")
-        else:
-            from .tfce import max_tfce
-            both = max_tfce(maps, indptr, indices, extent_exponent=correction.extent_exponent,
-                            height_exponent=correction.height_exponent)
-        return both.max(axis=1) if two_tails else both[:, 0]
-
-    from ..kernels import scan_maps
-
     per_map = engine.bytes_per_map
+    if per_map > memory_limit:
+        raise ExecutionError(f"one resampled map of {P} points needs about {per_map / 2**20:.0f} MiB, "
+                             f"above the memory limit of {memory_limit / 2**20:.0f} MiB; raise --memory-limit")
     # Small batches keep the maps in cache; results do not depend on the batch size.
-    batch = int(max(1, min(rows.shape[0], _MAX_BATCH, memory_limit // max(per_map, 1))))
-    null = np.empty(rows.shape[0])
-    counts = np.zeros(P, dtype=np.int64)
+    batch = int(max(1, min(_MAX_BATCH, memory_limit // max(per_map, 1))))
     edge = np.where(finite, obs_or - _TIE * np.abs(np.where(finite, obs_or, 0.0)), np.inf)
-    hits = np.empty((batch, P), dtype=np.int8)
-    for start in range(0, rows.shape[0], batch):
-        maps = np.ascontiguousarray(engine.statistics(rows[start:start + batch]))
-        h = hits[:maps.shape[0]]
-        best = scan_maps(maps, edge, mode, sign, h)
-        counts += h.sum(axis=0, dtype=np.int64)
-        null[start:start + batch] = batch_max(maps, best)
-
+    shared = _NullWork(engine=engine, edge=edge, mode=mode, sign=sign, method=correction.method,
+                       correction=correction, graph=graph, threshold=threshold, two_tails=two_tails,
+                       batch=batch, scheme=scheme, n=n, seed=correction.seed)
     N = rows.shape[0]
+    # Tasks of whole seed blocks: about 200 at most, so progress and load balance stay fine.
+    chunk = BLOCK * max(1, -(-N // (BLOCK * 200)))
+    items = [(start, min(start + chunk, N), rows[start:start + chunk] if exhaustive else None)
+             for start in range(0, N, chunk)]
+    done = [0]
+    if progress is not None:
+        progress(task, 0, N)
+
+    def on_result(i, part):
+        done[0] += items[i][1] - items[i][0]
+        if progress is not None:
+            progress(task, done[0], N)
+
+    from ..parallel import InProcess
+    parts = (backend or InProcess()).map(null_chunk, items, shared=shared,
+                                         labels=[f"{task} {a + 1}-{b}" for a, b, _ in items],
+                                         on_result=on_result)
+    counts = np.zeros(P, dtype=np.int64)
+    for c, _ in parts:
+        counts += c
+    null = np.concatenate([nl for _, nl in parts])
     add = 0 if exhaustive else 1
 
     def p_of(count):

@@ -1,0 +1,250 @@
+"""Where the work runs: in this process, on local worker processes, or on a Dask cluster.
+
+The statistics never branch on the backend. A stage hands a backend a pure function, the data
+every task shares and one small item per task; the backend returns the results in item order.
+Results are combined in that order by the caller, so they are bitwise the same whatever the
+backend, the number of workers or the order in which tasks finish.
+
+Backends:
+
+:class:`InProcess`
+    Runs the tasks here, in order, with numba's threads (the default, ``workers=1``).
+:class:`DaskBackend`
+    Runs them on a ``dask.distributed`` cluster: an existing scheduler (``scheduler=ADDRESS``)
+    or a local cluster of worker processes started for the run (``workers=N``). The shared data
+    are scattered to every worker once; a task whose worker dies is run again on another one
+    (up to Dask's ``distributed.scheduler.allowed-failures`` times).
+
+Dask is optional (``pip install "glmeeg[dask]"``); it is imported only when asked for.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import re
+from contextlib import contextmanager
+from dataclasses import dataclass
+from typing import Any, Callable, Iterator, Protocol, Sequence
+
+from .errors import ExecutionError, GlmeegError
+
+__all__ = ["Backend", "InProcess", "DaskBackend", "open_backend", "parse_size", "default_memory_limit",
+           "Progress"]
+
+log = logging.getLogger("glmeeg")
+
+
+class Progress(Protocol):
+    """Receives progress: ``progress(task, done, total)``; ``done == 0`` announces a task."""
+
+    def __call__(self, task: str, done: int, total: int) -> None: ...
+
+
+class Backend(Protocol):
+    """Runs ``fn(shared, item)`` for every item and returns the results in item order."""
+
+    workers: int
+
+    def map(self, fn: Callable[[Any, Any], Any], items: Sequence[Any], *, shared: Any = None,
+            labels: Sequence[str] | None = None,
+            on_result: Callable[[int, Any], None] | None = None) -> list: ...
+
+
+class InProcess:
+    """Run every task in this process, one after the other (numba still uses its threads)."""
+
+    workers = 1
+
+    def map(self, fn, items, *, shared=None, labels=None, on_result=None) -> list:
+        out = []
+        for i, item in enumerate(items):
+            r = fn(shared, item)
+            if on_result is not None:
+                on_result(i, r)
+            out.append(r)
+        return out
+
+    def __repr__(self) -> str:
+        return "InProcess()"
+
+
+def _run_task(fn, shared, item):
+    """A task on a Dask worker: numba uses no more threads than the worker has."""
+    try:
+        from distributed import get_worker
+
+        nthreads = get_worker().state.nthreads
+    except (ImportError, ValueError, AttributeError):
+        nthreads = None
+    if nthreads:
+        import numba
+
+        numba.set_num_threads(max(1, min(int(nthreads), numba.config.NUMBA_NUM_THREADS)))
+    return fn(shared, item)
+
+
+@dataclass
+class DaskBackend:
+    """Run tasks on a ``dask.distributed`` client's cluster.
+
+    Parameters
+    ----------
+    client : distributed.Client
+    """
+
+    client: Any
+
+    @property
+    def workers(self) -> int:
+        return max(1, len(self.client.scheduler_info(n_workers=-1).get("workers", {})))
+
+    def map(self, fn, items, *, shared=None, labels=None, on_result=None) -> list:
+        from distributed import as_completed
+        from distributed.scheduler import KilledWorker
+
+        if not items:
+            return []
+        token = os.urandom(6).hex()
+        name = getattr(fn, "__name__", "task")
+        shared_f = self.client.scatter(shared, broadcast=True, hash=False) if shared is not None else None
+        futures = [self.client.submit(_run_task, fn, shared_f, item, key=f"glmeeg-{name}-{token}-{i}",
+                                      pure=False) for i, item in enumerate(items)]
+        index = {f.key: i for i, f in enumerate(futures)}
+        out: list = [None] * len(items)
+        try:
+            for fut in as_completed(futures):
+                i = index[fut.key]
+                try:
+                    r = fut.result()
+                except KilledWorker:
+                    what = labels[i] if labels is not None else f"task {i + 1} of {len(items)}"
+                    tries = _allowed_failures()
+                    raise ExecutionError(f"{what}: the Dask worker running it died on every try "
+                                         f"({tries + 1} tries); it may need more memory than a worker "
+                                         "has (see the workers' logs)") from None
+                out[i] = r
+                if on_result is not None:
+                    on_result(i, r)
+                fut.release()
+        except BaseException:
+            self.client.cancel(futures)
+            raise
+        finally:
+            if shared_f is not None:
+                shared_f.release()
+        return out
+
+    def __repr__(self) -> str:
+        return f"DaskBackend({self.client.scheduler.address})"
+
+
+def _allowed_failures() -> int:
+    import dask
+
+    return int(dask.config.get("distributed.scheduler.allowed-failures", 3))
+
+
+def _need_distributed(what: str):
+    try:
+        import distributed
+    except ImportError:
+        raise ExecutionError(f"{what} needs Dask's distributed scheduler; install it with "
+                             "pip install \"glmeeg[dask]\"") from None
+    return distributed
+
+
+@contextmanager
+def open_backend(*, workers: int = 1, scheduler: str | None = None, client: Any = None,
+                 timeout: float = 10.0) -> Iterator[Backend]:
+    """The backend of a run, closed (with any cluster it started) on exit.
+
+    Parameters
+    ----------
+    workers : int, default 1
+        Local execution: 1 runs everything in this process; more starts a local Dask cluster of
+        that many worker processes (loopback only), with the machine's cores shared among them.
+    scheduler : str, optional
+        Address of an existing Dask scheduler (``tcp://host:8786``); ``workers`` is then ignored.
+    client : distributed.Client, optional
+        An existing client to use (it is left open).
+    timeout : float, default 10
+        Seconds to wait for the scheduler.
+
+    Raises
+    ------
+    ExecutionError
+        Dask is not installed, the scheduler cannot be reached, or ``workers`` < 1.
+    """
+    if client is not None:
+        yield DaskBackend(client)
+        return
+    if scheduler is not None:
+        distributed = _need_distributed("--scheduler")
+        try:
+            c = distributed.Client(scheduler, timeout=timeout, set_as_default=False)
+        except (OSError, TimeoutError, ValueError, TypeError) as e:
+            first = (str(e).splitlines() or [type(e).__name__])[0]
+            raise ExecutionError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({first})") from None
+        try:
+            yield DaskBackend(c)
+        finally:
+            c.close()
+        return
+    if workers < 1:
+        raise ExecutionError(f"--workers must be at least 1; got {workers}")
+    if workers == 1:
+        yield InProcess()
+        return
+    distributed = _need_distributed(f"--workers {workers}")
+    threads = max(1, (os.cpu_count() or 1) // workers)
+    cluster = distributed.LocalCluster(n_workers=workers, threads_per_worker=threads, processes=True,
+                                       host="127.0.0.1", dashboard_address=None,
+                                       silence_logs=logging.ERROR)
+    try:
+        c = distributed.Client(cluster, set_as_default=False)
+        try:
+            yield DaskBackend(c)
+        finally:
+            c.close()
+    finally:
+        cluster.close()
+
+
+_UNITS = {"b": 1, "kb": 10**3, "mb": 10**6, "gb": 10**9, "tb": 10**12,
+          "kib": 2**10, "mib": 2**20, "gib": 2**30, "tib": 2**40}
+
+
+def parse_size(text: str | int, *, where: str = "--memory-limit") -> int:
+    """Bytes of a size such as ``"2GB"``, ``"512MiB"`` or ``"1.5 GiB"`` (an int is bytes).
+
+    Raises
+    ------
+    GlmeegError
+        Not a positive size with a unit (B, kB, MB, GB, TB, KiB, MiB, GiB, TiB).
+    """
+    if isinstance(text, int) and not isinstance(text, bool):
+        value = text
+    else:
+        m = re.fullmatch(r"\s*([0-9]*\.?[0-9]+)\s*([a-zA-Z]+)\s*", str(text))
+        if m is None or m.group(2).lower() not in _UNITS:
+            raise GlmeegError(f"{where}: {text!r} is not a size; expected a number and a unit, "
+                              "e.g. 2GB or 512MiB")
+        value = int(float(m.group(1)) * _UNITS[m.group(2).lower()])
+    if value <= 0:
+        raise GlmeegError(f"{where}: {text!r}; expected a positive size")
+    return value
+
+
+def default_memory_limit() -> int:
+    """Half of this machine's memory, between 1 GiB and 16 GiB (the default budget)."""
+    try:
+        total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):
+        total = 8 * 2**30
+    return int(min(max(total // 2, 2**30), 16 * 2**30))
+
+
+def format_size(n: float) -> str:
+    """``n`` bytes as MiB or GiB, for messages."""
+    return f"{n / 2**30:.2f} GiB" if n >= 2**30 else f"{n / 2**20:.0f} MiB"
