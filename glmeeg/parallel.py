@@ -23,6 +23,7 @@ from __future__ import annotations
 import logging
 import os
 import re
+import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any, Callable, Iterator, Protocol, Sequence
@@ -113,7 +114,7 @@ class DaskBackend:
         index = {f.key: i for i, f in enumerate(futures)}
         out: list = [None] * len(items)
         try:
-            for fut in as_completed(futures):
+            for fut in as_completed(futures, loop=self.client.loop):
                 i = index[fut.key]
                 try:
                     r = fut.result()
@@ -198,9 +199,11 @@ def open_backend(*, workers: int = 1, scheduler: str | None = None, client: Any 
         return
     distributed = _need_distributed(f"--workers {workers}")
     threads = max(1, (os.cpu_count() or 1) // workers)
-    cluster = distributed.LocalCluster(n_workers=workers, threads_per_worker=threads, processes=True,
-                                       host="127.0.0.1", dashboard_address=None,
-                                       silence_logs=logging.ERROR)
+    with warnings.catch_warnings():  # "port 8787 in use" when another cluster runs: harmless
+        warnings.simplefilter("ignore", UserWarning)
+        cluster = distributed.LocalCluster(n_workers=workers, threads_per_worker=threads, processes=True,
+                                           host="127.0.0.1", dashboard_address=None,
+                                           silence_logs=logging.ERROR)
     try:
         c = distributed.Client(cluster, set_as_default=False)
         try:
