@@ -17,6 +17,7 @@ import json
 import logging
 import os
 import tempfile
+import zipfile
 from pathlib import Path
 
 import numpy as np
@@ -61,7 +62,7 @@ class FitCache:
             return SubjectFit(subject=subject, betas=betas, df_resid=int(meta["df_resid"]),
                               robust_iterations_max=meta.get("robust_iterations_max"),
                               robust_unconverged_points=meta.get("robust_unconverged_points"))
-        except (OSError, ValueError, KeyError, TypeError, EOFError) as e:
+        except (OSError, ValueError, KeyError, TypeError, EOFError, zipfile.BadZipFile) as e:
             log.warning("subject %s: cached fit %s unreadable (%s); refitting", subject, path.name, e)
             return None
 
