@@ -98,7 +98,11 @@ class DaskBackend:
 
     @property
     def workers(self) -> int:
-        return max(1, len(self.client.scheduler_info(n_workers=-1).get("workers", {})))
+        try:
+            info = self.client.scheduler_info(n_workers=-1)
+        except TypeError:  # versions before the n_workers argument list every worker
+            info = self.client.scheduler_info()
+        return max(1, len(info.get("workers", {})))
 
     def map(self, fn, items, *, shared=None, labels=None, on_result=None) -> list:
         from distributed import as_completed

@@ -76,6 +76,11 @@ def test_local_cluster_equals_in_process(study, in_process, client):
     assert in_process.test("urgency-high-vs-low").significant.any()
 
 
+def test_scheduler_address_equals_in_process(study, in_process, client):
+    """The API's scheduler= (what --scheduler passes) connects a client of its own."""
+    assert_identical(in_process, run_analysis(study, scheduler=client.scheduler.address))
+
+
 def test_a_worker_killed_mid_run_changes_nothing(study, in_process, client):
     """SIGKILL one worker process while it holds subject fits: Dask reruns its tasks on the
     other worker (the nanny restarts the dead one) and the result is bitwise unchanged."""
