@@ -170,7 +170,7 @@ def open_backend(*, workers: int = 1, scheduler: str | None = None, client: Any 
         Local execution: 1 runs everything in this process; more starts a local Dask cluster of
         that many worker processes (loopback only), with the machine's cores shared among them.
     scheduler : str, optional
-        Address of an existing Dask scheduler (``tcp://host:8786``); ``workers`` is then ignored.
+        Address of an existing Dask scheduler (``tcp://host:8786``); ``workers`` must then be 1.
     client : distributed.Client, optional
         An existing client to use (it is left open).
     timeout : float, default 10
@@ -179,12 +179,16 @@ def open_backend(*, workers: int = 1, scheduler: str | None = None, client: Any 
     Raises
     ------
     ExecutionError
-        Dask is not installed, the scheduler cannot be reached, or ``workers`` < 1.
+        Dask is not installed, the scheduler cannot be reached, ``workers`` < 1, or both
+        ``workers`` and ``scheduler`` are given.
     """
     if client is not None:
         yield DaskBackend(client)
         return
     if scheduler is not None:
+        if workers != 1:
+            raise ExecutionError(f"--workers {workers} and --scheduler {scheduler}: give one of them "
+                                 "(the scheduler's cluster has its own workers)")
         distributed = _need_distributed("--scheduler")
         try:
             c = distributed.Client(scheduler, timeout=timeout, set_as_default=False)

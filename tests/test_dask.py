@@ -124,6 +124,14 @@ def test_unreachable_scheduler_is_one_line_exit_2(study, tmp_path):
     assert not out.exists()
 
 
+def test_workers_and_scheduler_together_are_refused(study, tmp_path):
+    result = CliRunner().invoke(app, ["run", str(study), "--out", str(tmp_path / "o"), "--workers", "2",
+                                      "--scheduler", "tcp://127.0.0.1:9"])
+    assert result.exit_code == 2
+    assert result.stderr.startswith("error: --workers 2 and --scheduler tcp://127.0.0.1:9: give one")
+    assert not (tmp_path / "o").exists()
+
+
 def test_missing_dask_is_a_clear_error(study, monkeypatch, tmp_path):
     monkeypatch.setitem(sys.modules, "distributed", None)  # import distributed -> ImportError
     result = CliRunner().invoke(app, ["run", str(study), "--out", str(tmp_path / "o"), "--workers", "2"])
