@@ -5,10 +5,10 @@ the fit (:attr:`glmeeg.subject_jobs.SubjectJob.key`). A fit is written to a temp
 same folder and renamed into place, so an entry is either whole or absent: a run killed at any
 moment leaves only complete entries, and the next run takes them instead of refitting. An
 entry that cannot be read (a damaged disk, a foreign file) is ignored and refitted.
-:func:`glmeeg.results.write_run` carries the folder over when it replaces a run, and the entries
-the new run did not use are removed then. A run that fails on an input error removes the
-entries it added, so the output folder is left as it was; a run that is killed or interrupted
-keeps them.
+:func:`glmeeg.results.write_run` carries the folder over when it replaces a run; once the new
+results are written, the entries the new run did not use are removed (:meth:`FitCache.prune`).
+A run that fails on an input error removes the entries it added, so the output folder is left
+as it was; a run that is killed, interrupted or loses its workers keeps them.
 """
 
 from __future__ import annotations
@@ -22,6 +22,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .errors import GlmeegError
 from .subject_jobs import FIT_FORMAT, SubjectFit
 
 __all__ = ["CACHE_FOLDER", "FitCache"]
@@ -69,19 +70,29 @@ class FitCache:
     def store(self, key: str, fit: SubjectFit) -> Path:
         """Write one fit atomically (temporary file in the folder, then rename)."""
         path = self._path(key)
-        self.folder.mkdir(parents=True, exist_ok=True)
         meta = {"format": FIT_FORMAT, "subject": fit.subject, "df_resid": fit.df_resid,
                 "robust_iterations_max": fit.robust_iterations_max,
                 "robust_unconverged_points": fit.robust_unconverged_points}
-        fd, tmp = tempfile.mkstemp(prefix=f".{key[:16]}.", suffix=".partial", dir=self.folder)
+        tmp = None
         try:
+            self.folder.mkdir(parents=True, exist_ok=True)
+            fd, tmp = tempfile.mkstemp(prefix=f".{key[:16]}.", suffix=".partial", dir=self.folder)
+            umask = os.umask(0)
+            os.umask(umask)
+            os.fchmod(fd, 0o666 & ~umask)  # mkstemp makes the file private; give it the usual mode
             with os.fdopen(fd, "wb") as fh:
                 np.savez(fh, betas=fit.betas, meta=np.array(json.dumps(meta, sort_keys=True)))
                 fh.flush()
                 os.fsync(fh.fileno())
             os.replace(tmp, path)
+        except OSError as e:
+            if tmp is not None:
+                Path(tmp).unlink(missing_ok=True)
+            raise GlmeegError(f"{self.folder}: cannot store the fit of subject {fit.subject} "
+                              f"({e.strerror or e})") from None
         except BaseException:
-            Path(tmp).unlink(missing_ok=True)
+            if tmp is not None:
+                Path(tmp).unlink(missing_ok=True)
             raise
         return path
 

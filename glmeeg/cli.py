@@ -36,7 +36,10 @@ def _reports_errors(fn):
         from .errors import GlmeegError
 
         try:
-            return fn(*args, **kwargs)
+            try:
+                return fn(*args, **kwargs)
+            finally:
+                _close_progress()
         except GlmeegError as e:
             _close_progress()
             typer.echo(f"error: {e}", err=True)
@@ -127,6 +130,12 @@ def run(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
         raise
     _close_progress()
     write_run(result, out, report=None if no_report else _report(result))
+    from .cache import FitCache
+    from .pipeline import subject_jobs
+
+    # Fits of earlier data or subject models are not needed again.
+    FitCache(Path(out) / CACHE_FOLDER).prune({j.key for j in subject_jobs(
+        plan, hashes=result.provenance.input_sha256)})
     if not quiet:
         typer.echo(str(result))
         typer.echo(f"results written to {out}")

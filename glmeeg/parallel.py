@@ -21,6 +21,7 @@ Dask is optional (``pip install "glmeeg[dask]"``); it is imported only when aske
 from __future__ import annotations
 
 import logging
+import math
 import os
 import re
 import warnings
@@ -49,7 +50,9 @@ class Backend(Protocol):
 
     def map(self, fn: Callable[[Any, Any], Any], items: Sequence[Any], *, shared: Any = None,
             labels: Sequence[str] | None = None,
-            on_result: Callable[[int, Any], None] | None = None) -> list: ...
+            on_result: Callable[[int, Any], None] | None = None, keep: bool = True) -> list | None:
+        """``keep=False`` hands each result to ``on_result`` only and returns None, so results
+        need not all be held at once."""
 
 
 class InProcess:
@@ -57,31 +60,26 @@ class InProcess:
 
     workers = 1
 
-    def map(self, fn, items, *, shared=None, labels=None, on_result=None) -> list:
+    def map(self, fn, items, *, shared=None, labels=None, on_result=None, keep=True) -> list | None:
         out = []
         for i, item in enumerate(items):
             r = fn(shared, item)
             if on_result is not None:
                 on_result(i, r)
-            out.append(r)
-        return out
+            if keep:
+                out.append(r)
+        return out if keep else None
 
     def __repr__(self) -> str:
         return "InProcess()"
 
 
-def _run_task(fn, shared, item):
-    """A task on a Dask worker: numba uses no more threads than the worker has."""
-    try:
-        from distributed import get_worker
+def _run_task(fn, shared, item, threads):
+    """A task on a Dask worker, its numba kernels on ``threads`` threads (so that the worker's
+    own threads and numba's do not multiply)."""
+    import numba
 
-        nthreads = get_worker().state.nthreads
-    except (ImportError, ValueError, AttributeError):
-        nthreads = None
-    if nthreads:
-        import numba
-
-        numba.set_num_threads(max(1, min(int(nthreads), numba.config.NUMBA_NUM_THREADS)))
+    numba.set_num_threads(max(1, min(int(threads), numba.config.NUMBA_NUM_THREADS)))
     return fn(shared, item)
 
 
@@ -92,9 +90,14 @@ class DaskBackend:
     Parameters
     ----------
     client : distributed.Client
+    task_threads : int, default 1
+        numba threads of each task. A cluster whose workers run several tasks at once (several
+        threads per worker) should keep 1; :func:`open_backend` gives the workers of the local
+        cluster it starts one task at a time and the cores shared among them.
     """
 
     client: Any
+    task_threads: int = 1
 
     @property
     def workers(self) -> int:
@@ -104,44 +107,63 @@ class DaskBackend:
             info = self.client.scheduler_info()
         return max(1, len(info.get("workers", {})))
 
-    def map(self, fn, items, *, shared=None, labels=None, on_result=None) -> list:
+    def map(self, fn, items, *, shared=None, labels=None, on_result=None, keep=True) -> list | None:
         from distributed import as_completed
         from distributed.scheduler import KilledWorker
 
         if not items:
-            return []
+            return [] if keep else None
         token = os.urandom(6).hex()
         name = getattr(fn, "__name__", "task")
-        shared_f = self.client.scatter(shared, broadcast=True, hash=False) if shared is not None else None
-        futures = [self.client.submit(_run_task, fn, shared_f, item, key=f"glmeeg-{name}-{token}-{i}",
-                                      pure=False) for i, item in enumerate(items)]
-        index = {f.key: i for i, f in enumerate(futures)}
-        out: list = [None] * len(items)
+        out: list = [None] * len(items) if keep else []
+        futures: list = []
+        shared_f = None
+
+        def what(i: int) -> str:
+            return labels[i] if labels is not None else f"task {i + 1} of {len(items)}"
+
         try:
+            if shared is not None:  # shipped to every worker once
+                shared_f = self.client.scatter(shared, broadcast=True, hash=False)
+            futures = [self.client.submit(_run_task, fn, shared_f, item, self.task_threads,
+                                          key=f"glmeeg-{name}-{token}-{i}", pure=False)
+                       for i, item in enumerate(items)]
+            index = {f.key: i for i, f in enumerate(futures)}
             for fut in as_completed(futures, loop=self.client.loop):
                 i = index[fut.key]
                 try:
                     r = fut.result()
                 except KilledWorker:
-                    what = labels[i] if labels is not None else f"task {i + 1} of {len(items)}"
-                    tries = _allowed_failures()
-                    raise ExecutionError(f"{what}: the Dask worker running it died on every try "
-                                         f"({tries + 1} tries); it may need more memory than a worker "
-                                         "has (see the workers' logs)") from None
-                out[i] = r
+                    raise ExecutionError(f"{what(i)}: the Dask worker running it died on every try "
+                                         f"({_allowed_failures() + 1} tries); it may need more memory "
+                                         "than a worker has (see the workers' logs)") from None
+                except GlmeegError:
+                    raise
+                except Exception as e:  # noqa: BLE001 - a remote failure becomes one line
+                    raise ExecutionError(f"{what(i)}: failed on the Dask cluster ({_first_line(e)})") from None
+                if keep:
+                    out[i] = r
                 if on_result is not None:
                     on_result(i, r)
                 fut.release()
-        except BaseException:
+        except (GlmeegError, KeyboardInterrupt):
             self.client.cancel(futures)
             raise
+        except Exception as e:  # noqa: BLE001 - lost scheduler, lost scattered data ...
+            self.client.cancel(futures)
+            raise ExecutionError(f"the Dask cluster failed while running {name} ({_first_line(e)})") from None
         finally:
             if shared_f is not None:
                 shared_f.release()
-        return out
+        return out if keep else None
 
     def __repr__(self) -> str:
         return f"DaskBackend({self.client.scheduler.address})"
+
+
+def _first_line(e: BaseException) -> str:
+    text = (str(e).strip().splitlines() or [""])[0]
+    return f"{type(e).__name__}: {text}" if text else type(e).__name__
 
 
 def _allowed_failures() -> int:
@@ -161,7 +183,7 @@ def _need_distributed(what: str):
 
 @contextmanager
 def open_backend(*, workers: int = 1, scheduler: str | None = None, client: Any = None,
-                 timeout: float = 10.0) -> Iterator[Backend]:
+                 timeout: float = 10.0, worker_timeout: float = 60.0) -> Iterator[Backend]:
     """The backend of a run, closed (with any cluster it started) on exit.
 
     Parameters
@@ -175,12 +197,15 @@ def open_backend(*, workers: int = 1, scheduler: str | None = None, client: Any 
         An existing client to use (it is left open).
     timeout : float, default 10
         Seconds to wait for the scheduler.
+    worker_timeout : float, default 60
+        Seconds to wait for the scheduler's first worker.
 
     Raises
     ------
     ExecutionError
-        Dask is not installed, the scheduler cannot be reached, ``workers`` < 1, or both
-        ``workers`` and ``scheduler`` are given.
+        Dask is not installed, the scheduler cannot be reached or has no worker, the local
+        cluster does not start, ``workers`` < 1, or both ``workers`` and ``scheduler`` are
+        given.
     """
     if client is not None:
         yield DaskBackend(client)
@@ -193,9 +218,14 @@ def open_backend(*, workers: int = 1, scheduler: str | None = None, client: Any 
         try:
             c = distributed.Client(scheduler, timeout=timeout, set_as_default=False)
         except (OSError, TimeoutError, ValueError, TypeError) as e:
-            first = (str(e).splitlines() or [type(e).__name__])[0]
-            raise ExecutionError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({first})") from None
+            raise ExecutionError(f"--scheduler {scheduler}: cannot reach the Dask scheduler "
+                                 f"({_first_line(e)})") from None
         try:
+            try:
+                c.wait_for_workers(1, timeout=worker_timeout)
+            except (TimeoutError, OSError):
+                raise ExecutionError(f"--scheduler {scheduler}: no worker joined the cluster within "
+                                     f"{worker_timeout:g} s") from None
             yield DaskBackend(c)
         finally:
             c.close()
@@ -207,15 +237,21 @@ def open_backend(*, workers: int = 1, scheduler: str | None = None, client: Any 
         return
     distributed = _need_distributed(f"--workers {workers}")
     threads = max(1, (os.cpu_count() or 1) // workers)
-    with warnings.catch_warnings():  # "port 8787 in use" when another cluster runs: harmless
-        warnings.simplefilter("ignore", UserWarning)
-        cluster = distributed.LocalCluster(n_workers=workers, threads_per_worker=threads, processes=True,
-                                           host="127.0.0.1", dashboard_address=None,
-                                           silence_logs=logging.ERROR)
+    try:
+        with warnings.catch_warnings():  # "port 8787 in use" when another cluster runs: harmless
+            warnings.simplefilter("ignore", UserWarning)
+            # One task at a time per worker (memory: one subject per worker), numba sharing
+            # the cores among the workers.
+            cluster = distributed.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                                               host="127.0.0.1", dashboard_address=None,
+                                               silence_logs=logging.ERROR)
+    except Exception as e:  # noqa: BLE001 - no sockets, no processes ...
+        raise ExecutionError(f"--workers {workers}: the local Dask cluster did not start "
+                             f"({_first_line(e)})") from None
     try:
         c = distributed.Client(cluster, set_as_default=False)
         try:
-            yield DaskBackend(c)
+            yield DaskBackend(c, task_threads=threads)
         finally:
             c.close()
     finally:
@@ -241,7 +277,10 @@ def parse_size(text: str | int, *, where: str = "--memory-limit") -> int:
         if m is None or m.group(2).lower() not in _UNITS:
             raise GlmeegError(f"{where}: {text!r} is not a size; expected a number and a unit, "
                               "e.g. 2GB or 512MiB")
-        value = int(float(m.group(1)) * _UNITS[m.group(2).lower()])
+        number = float(m.group(1)) * _UNITS[m.group(2).lower()]
+        if not math.isfinite(number) or number > 2**62:
+            raise GlmeegError(f"{where}: {text[:40]!r}... is larger than any machine's memory")
+        value = int(number)
     if value <= 0:
         raise GlmeegError(f"{where}: {text!r}; expected a positive size")
     return value
@@ -258,4 +297,6 @@ def default_memory_limit() -> int:
 
 def format_size(n: float) -> str:
     """``n`` bytes as MiB or GiB, for messages."""
-    return f"{n / 2**30:.2f} GiB" if n >= 2**30 else f"{n / 2**20:.0f} MiB"
+    if n >= 2**30:
+        return f"{n / 2**30:.2f} GiB"
+    return f"{n / 2**20:.0f} MiB" if n >= 2**20 else f"{n / 2**10:.0f} KiB"

@@ -271,7 +271,7 @@ def subject_jobs(plan: AnalysisPlan, *, hashes: dict[str, str] | None = None) ->
     for s in st.subject_ids:
         X = plan.subject_matrices[s]
         trials = st.subject_trials(s)
-        jobs.append(SubjectJob(subject=s, path=str(st.epoch_files[s]), label=st.epoch_label(s),
+        jobs.append(SubjectJob(subject=s, path=str(Path(st.epoch_files[s]).resolve()), label=st.epoch_label(s),
                                epochs=trials["epoch"].to_numpy()[X.kept].astype(np.int64),
                                design=np.asarray(X.matrix, dtype=np.float64), n_points=st.axes.n_points,
                                itemsize=st.epoch_itemsizes.get(s, 8),
@@ -301,7 +301,8 @@ def check_memory(plan: AnalysisPlan, jobs: list[SubjectJob], memory_limit: int) 
     from .subject_jobs import job_memory
 
     n_rows = sum(t.subject_contrast.n_rows for t in plan.tests)
-    group = len(jobs) * n_rows * plan.study.axes.n_points * 8
+    P = plan.study.axes.n_points
+    group = len(jobs) * n_rows * P * 8
     for j in jobs:
         need = job_memory(j)
         if need + group > memory_limit:
@@ -309,6 +310,18 @@ def check_memory(plan: AnalysisPlan, jobs: list[SubjectJob], memory_limit: int) 
                                  f"({len(j.epochs)} trials x {j.n_points} points) next to "
                                  f"{format_size(group)} of group data, above the memory limit of "
                                  f"{format_size(memory_limit)}; raise --memory-limit")
+    for t in plan.tests:
+        if t.spec.correction not in PERMUTATION_METHODS:
+            continue
+        # one resampled map and the reduced data of the test (inference.permutation's engines)
+        q, k = t.group_matrix.matrix.shape[1], t.subject_contrast.n_rows
+        per_map = P * 8 * (4 if t.spec.group_method != "glm" else q * k + 6)
+        need = group + len(t.subjects) * k * P * 8 + per_map
+        if need > memory_limit:
+            raise ExecutionError(f"test {t.spec.name}: its permutation test needs about "
+                                 f"{format_size(need)} (group data and one resampled map of {P} "
+                                 f"points), above the memory limit of {format_size(memory_limit)}; "
+                                 "raise --memory-limit")
 
 
 def fit_subjects(plan: AnalysisPlan, *, backend: Backend | None = None, cache: FitCache | None = None,
@@ -348,10 +361,10 @@ def fit_subjects(plan: AnalysisPlan, *, backend: Backend | None = None, cache: F
     from .parallel import InProcess, default_memory_limit
     from .subject_jobs import run_subject_job
 
-    if cache is not None and hashes is None:
-        raise ValueError("a cache needs the input files' hashes (hashes=provenance.input_sha256)")
     st = plan.study
     jobs = subject_jobs(plan, hashes=hashes)
+    if cache is not None and not all(j.data_sha256 for j in jobs):
+        raise ValueError("a cache needs the SHA-256 of every epoch file (hashes=provenance.input_sha256)")
     check_memory(plan, jobs, memory_limit or default_memory_limit())
     C, rows = _contrast_rows(plan)
     out = np.empty((len(jobs), C.shape[0], st.axes.n_points))
@@ -383,9 +396,8 @@ def fit_subjects(plan: AnalysisPlan, *, backend: Backend | None = None, cache: F
             progress(task, done[0], len(jobs))
 
     (backend or InProcess()).map(run_subject_job, [jobs[i] for i in pending],
-                                 labels=[f"subject {jobs[i].subject}" for i in pending], on_result=on_result)
-    if cache is not None:
-        cache.prune({j.key for j in jobs})  # fits of earlier designs or data are not needed again
+                                 labels=[f"subject {jobs[i].subject}" for i in pending],
+                                 on_result=on_result, keep=False)
     summaries = []
     for job, fit in zip(jobs, facts):
         X = plan.subject_matrices[job.subject]
@@ -611,7 +623,9 @@ def run_analysis(design: str | Path | AnalysisPlan, *, progress: Progress | None
     cache : str, Path or FitCache, optional
         Folder of the subject-fit cache (the CLI uses ``OUT/subject-fits``). Finished fits are
         reused, new ones stored as they finish, so an interrupted run resumes. A run that fails
-        on an input error removes the entries it added.
+        on an input error removes the entries it added (one that fails for its workers keeps
+        them). Entries no longer used are removed by :meth:`FitCache.prune` (the CLI calls it
+        once the results are written).
     refit : bool, default False
         Refit every subject even when the cache holds its fit.
 
@@ -648,6 +662,8 @@ def run_analysis(design: str | Path | AnalysisPlan, *, progress: Progress | None
                                progress=progress, memory_limit=limit)
             tests = tuple(test_group(plan, t, est, prov=prov, memory_limit=limit, backend=backend,
                                      progress=progress) for t in plan.tests)
+    except ExecutionError:
+        raise  # dead workers, a lost cluster: the fits finished so far stay, for the re-run
     except GlmeegError:
         if cache is not None:  # an input error leaves the output folder as it was
             cache.rollback(before)

@@ -905,11 +905,11 @@ def write_run(run: RunResult, out: str | Path, *, report: str | None = None) -> 
         if out.exists():
             from .cache import CACHE_FOLDER
 
+            if (out / CACHE_FOLDER).is_dir():  # the subject-fit cache stays with the results
+                os.replace(out / CACHE_FOLDER, tmp / CACHE_FOLDER)
             old = out.with_name(f".{out.name}.{os.getpid()}.old")
             os.replace(out, old)
             os.replace(tmp, out)
-            if (old / CACHE_FOLDER).is_dir():  # the subject-fit cache stays with the results
-                os.replace(old / CACHE_FOLDER, out / CACHE_FOLDER)
             shutil.rmtree(old, ignore_errors=True)
         else:
             os.replace(tmp, out)

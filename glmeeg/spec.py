@@ -192,6 +192,8 @@ class TestSpec(_Strict):
         if not _SAFE_NAME.match(v) or v in (".", ".."):
             raise ValueError("must be 1-100 letters, digits, '.', '_' or '-', starting with a letter "
                              "or digit (it becomes a folder name)")
+        if v == "subject-fits":
+            raise ValueError("'subject-fits' is the folder of the cached subject fits; choose another name")
         return v
 
     @field_validator("subject_contrast", "group_contrast")

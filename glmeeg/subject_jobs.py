@@ -66,13 +66,19 @@ class SubjectJob:
 
     @cached_property
     def key(self) -> str:
-        """SHA-256 of every input of the fit (data, epochs, design, weights, method, version)."""
+        """SHA-256 of every input of the fit (data, epochs, design, weights, method, and the
+        versions of glmeeg, numpy, scipy and numba)."""
+        import numba
+        import scipy
+
         from . import __version__
 
         def digest(a):
             return None if a is None else hashlib.sha256(np.ascontiguousarray(a).tobytes()).hexdigest()
 
-        doc = {"format": FIT_FORMAT, "glmeeg": __version__, "subject": self.subject,
+        # The libraries whose arithmetic makes the fit's bits (QR, the compiled kernels).
+        versions = [__version__, np.__version__, scipy.__version__, numba.__version__]
+        doc = {"format": FIT_FORMAT, "versions": versions, "subject": self.subject,
                "data": self.data_sha256, "n_points": self.n_points,
                "epochs": digest(np.asarray(self.epochs, dtype=np.int64)),
                "design": [list(self.design.shape), digest(np.asarray(self.design, dtype=np.float64))],

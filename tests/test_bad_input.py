@@ -230,6 +230,8 @@ _CASES = [
      dict(n_freqs=3, extra_data="frequencies = [8.0, 6.0, 4.0]")),
     ("test-name-slash", _tests(tblock('subject_contrast = "condition[T.b]"', "b/../a")),
      ["test[0].name", "folder name"], {}),
+    ("test-name-cache-folder", _tests(tblock('subject_contrast = "condition[T.b]"', "subject-fits")),
+     ["test[0].name", "cached subject fits"], {}),
     ("test-name-dotdot", _tests(tblock('subject_contrast = "condition[T.b]"', "..")),
      ["test[0].name", "'..'"], {}),
     ("duplicate-test-names", _tests(tblock('subject_contrast = "condition[T.b]"', "b-vs-a")

@@ -139,6 +139,16 @@ def test_missing_dask_is_a_clear_error(study, monkeypatch, tmp_path):
     assert result.stderr.startswith("error: --workers 2 needs Dask's distributed scheduler")
 
 
+def test_a_scheduler_without_workers_is_one_error():
+    from glmeeg.parallel import open_backend
+
+    with distributed.LocalCluster(n_workers=0, processes=True, host="127.0.0.1",
+                                  dashboard_address=None) as empty:
+        with pytest.raises(ExecutionError, match=r"no worker joined the cluster within 2 s$"):
+            with open_backend(scheduler=empty.scheduler_address, worker_timeout=2):
+                pass
+
+
 def _die(_shared, _item):
     os._exit(3)
 

@@ -170,7 +170,7 @@ def test_memory_limit_too_small_for_a_subject(design, tmp_path):
     assert not out.exists()
 
 
-@pytest.mark.parametrize("value", ["12", "lots", "-1GB", "0MB"])
+@pytest.mark.parametrize("value", ["12", "lots", "-1GB", "0MB", "9" * 400 + "GB"])
 def test_memory_limit_must_be_a_size(design, tmp_path, value):
     result = CliRunner().invoke(app, ["run", str(design), "--out", str(tmp_path / "o"), "--memory-limit", value])
     assert result.exit_code == 2

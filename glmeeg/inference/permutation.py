@@ -499,20 +499,21 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
     done = [0]
     if progress is not None:
         progress(task, 0, N)
+    counts = np.zeros(P, dtype=np.int64)
+    null = np.empty(N)
 
     def on_result(i, part):
+        # Integer counts: their sum does not depend on the order in which tasks finish.
+        counts[:] += part[0]
+        null[items[i][0]:items[i][1]] = part[1]
         done[0] += items[i][1] - items[i][0]
         if progress is not None:
             progress(task, done[0], N)
 
     from ..parallel import InProcess
-    parts = (backend or InProcess()).map(null_chunk, items, shared=shared,
-                                         labels=[f"{task} {a + 1}-{b}" for a, b, _ in items],
-                                         on_result=on_result)
-    counts = np.zeros(P, dtype=np.int64)
-    for c, _ in parts:
-        counts += c
-    null = np.concatenate([nl for _, nl in parts])
+    (backend or InProcess()).map(null_chunk, items, shared=shared,
+                                 labels=[f"{task} {a + 1}-{b}" for a, b, _ in items],
+                                 on_result=on_result, keep=False)
     add = 0 if exhaustive else 1
 
     def p_of(count):
