@@ -10,6 +10,7 @@ every point, reported as its exact F transform.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 from typing import Literal
 
@@ -21,7 +22,8 @@ from .effect_sizes import noncentrality_interval_f, noncentrality_interval_t
 from .errors import ModelError
 from .subject_level import fit_ols
 
-__all__ = ["GroupStatistics", "group_arrays", "group_test", "p_values", "hedges_factor"]
+__all__ = ["GroupStatistics", "group_arrays", "group_test", "group_test_in_chunks", "p_values",
+           "hedges_factor"]
 
 Alternative = Literal["two-sided", "greater", "less"]
 ALTERNATIVES = ("two-sided", "greater", "less")
@@ -253,3 +255,25 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
                            effect_size=es, effect_size_corrected=es_c, effect_size_name=names[0],
                            effect_size_corrected_name=names[1], effect_size_low=es_lo,
                            effect_size_high=es_hi, confidence_level=confidence_level)
+
+
+def group_test_in_chunks(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, *,
+                         memory_limit: int, alternative: Alternative = "two-sided",
+                         confidence_level: float = 0.95) -> GroupStatistics:
+    """:func:`group_test` over chunks of points sized from a memory budget.
+
+    Every statistic is computed point by point, so the chunks' results are simply put side by
+    side. Chunks hold at least 1,024 points; below the budget's size the map is one chunk.
+    """
+    Y, G, L = group_arrays(estimates, design, contrast)
+    n, k, P = Y.shape
+    per_point = 8 * n * k * 8  # the data, residuals and their products in group_test (about)
+    step = max(1024, int(memory_limit) // per_point)
+    if step >= P:
+        return group_test(Y, G, L, alternative=alternative, confidence_level=confidence_level)
+    parts = [group_test(Y[:, :, a:a + step], G, L, alternative=alternative,
+                        confidence_level=confidence_level) for a in range(0, P, step)]
+    joined = {f: np.concatenate([getattr(r, f) for r in parts], axis=-1)
+              for f in ("estimate", "standard_error", "statistic", "p", "effect_size",
+                        "effect_size_corrected", "effect_size_low", "effect_size_high")}
+    return dataclasses.replace(parts[0], **joined)

@@ -520,8 +520,10 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
         stats = welch_test(Y[:, 0], test.group_matrix.matrix, test.group_contrast.matrix,
                            alternative=test.spec.alternative)
     else:
-        stats = group_test(Y, test.group_matrix.matrix, test.group_contrast.matrix,
-                           alternative=test.spec.alternative, confidence_level=test.spec.confidence_level)
+        from .group_level import group_test_in_chunks
+        stats = group_test_in_chunks(Y, test.group_matrix.matrix, test.group_contrast.matrix,
+                                     memory_limit=memory_limit, alternative=test.spec.alternative,
+                                     confidence_level=test.spec.confidence_level)
     has_interval = bool(np.isfinite(stats.effect_size_low).any())
     extra: dict = {}
     if test.spec.bootstrap:

@@ -360,3 +360,23 @@ def test_e2e_joint_f_matches_manova_of_statsmodels_betas(e2e):
         # rtol 1e-10: the task's target (see the MANOVA checks above).
         np.testing.assert_allclose(result.statistic[j], F, rtol=1e-10, atol=0)
         np.testing.assert_allclose(result.p[j], p, rtol=1e-10, atol=0)
+
+
+@pytest.mark.parametrize("shape", [(12, 5000), (12, 2, 5000)])
+def test_chunks_of_points_give_the_same_maps(shape):
+    """group_test_in_chunks on 1,024-point chunks (a tiny budget) equals one group_test call:
+    every statistic is pointwise, so chunking changes nothing (bit for bit)."""
+    from glmeeg.group_level import group_test_in_chunks
+
+    rng = np.random.default_rng(8)
+    Y = rng.standard_normal(shape) + 0.3
+    G = np.column_stack([np.ones(12), rng.normal(size=12)])
+    L = np.array([[1.0, 0.0]])
+    whole = glmeeg.group_test(Y, G, L)
+    chunked = group_test_in_chunks(Y, G, L, memory_limit=1)
+    for f in ("estimate", "standard_error", "statistic", "p", "effect_size", "effect_size_corrected",
+              "effect_size_low", "effect_size_high"):
+        a, b = getattr(whole, f), getattr(chunked, f)
+        assert a.shape == b.shape
+        np.testing.assert_array_equal(a, b, err_msg=f)
+    assert chunked.df == whole.df and chunked.kind == whole.kind
