@@ -163,7 +163,6 @@ def neighbours(design: Annotated[Path, typer.Argument(help="Design file (TOML)."
                out: Annotated[Optional[Path], typer.Option("--out", "-o", help="Write the pairs as a "
                               "neighbour table (CSV: channel, neighbour) usable as [data] neighbours.")] = None) -> None:
     """Show which sensors count as neighbours for cluster and TFCE corrections."""
-    from .errors import GlmeegError
     from .neighbours import sensor_graph
     from .spec import load_design
     from .study import read_neighbour_table, read_study

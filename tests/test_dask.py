@@ -23,6 +23,10 @@ from glmeeg.pipeline import run_analysis
 from glmeeg.results import load_run
 from glmeeg.simulate import write_demo_study
 
+# Two clusters at once (the module's and one a test starts) share the default HTTP port; Dask
+# moves the second one elsewhere and says so.
+pytestmark = pytest.mark.filterwarnings("ignore:Port 8787 is already in use:UserWarning")
+
 
 ARRAYS = ("estimate", "standard_error", "statistic", "p", "p_corrected", "significant", "effect_size",
           "effect_size_corrected", "effect_size_low", "effect_size_high", "p_permutation", "tfce",
