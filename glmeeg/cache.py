@@ -115,12 +115,8 @@ class FitCache:
 
         Used when a run fails on an input error: the output folder is left as it was.
         """
-        if not self.folder.is_dir():
-            return
-        for p in self.folder.iterdir():
-            if p.is_file() and (p.name.endswith(".partial") or (p.suffix == ".npz" and p.stem not in keep)):
-                p.unlink(missing_ok=True)
+        self.prune(keep)
         try:
             self.folder.rmdir()
-        except OSError:  # not empty: earlier entries stay
+        except OSError:  # absent, or not empty: earlier entries stay
             pass

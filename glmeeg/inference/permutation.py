@@ -459,11 +459,12 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
         engine = _Engine(Y, G, L, scheme)
     else:
         engine = _robust_engine(Y, G, L, scheme, kind=kind, method=method, trim=trim)
-    exhaustive = (2 ** n if scheme == "sign-flip" else math.factorial(n)) <= correction.permutations
-    if exhaustive:
-        rows, _ = resamplings(scheme, n, permutations=correction.permutations, seed=correction.seed)
-    else:  # the workers draw their own blocks; only the count is needed here
-        rows = np.empty((correction.permutations, 0))
+    total = 2 ** n if scheme == "sign-flip" else math.factorial(n)
+    exhaustive = total <= correction.permutations
+    # Exhaustive resamplings are listed here; random ones are drawn by the tasks from their blocks.
+    rows = resamplings(scheme, n, permutations=correction.permutations, seed=correction.seed)[0] \
+        if exhaustive else None
+    N = total if exhaustive else correction.permutations
     identity = (np.ones((1, n), dtype=np.int8) if scheme == "sign-flip"
                 else np.arange(n, dtype=np.int32)[None, :])
     observed = engine.statistics(identity)[0]
@@ -491,7 +492,6 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
     shared = _NullWork(engine=engine, edge=edge, mode=mode, sign=sign, method=correction.method,
                        correction=correction, graph=graph, threshold=threshold, two_tails=two_tails,
                        batch=batch, scheme=scheme, n=n, seed=correction.seed)
-    N = rows.shape[0]
     # Tasks of whole seed blocks: about 200 at most, so progress and load balance stay fine.
     chunk = BLOCK * max(1, -(-N // (BLOCK * 200)))
     items = [(start, min(start + chunk, N), rows[start:start + chunk] if exhaustive else None)
