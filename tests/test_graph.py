@@ -171,8 +171,8 @@ def test_no_diagonal_time_neighbours():
 def test_graph_arrays(demo_sensors):
     a = points_graph(demo_sensors.adjacency(), (32, 3, 4))
     indptr, indices = graph_arrays(a)
-    for arr in (indptr, indices):
-        assert arr.dtype == np.int64 and arr.flags.c_contiguous
+    assert indptr.dtype == np.int64 and indices.dtype == np.int32
+    assert indptr.flags.c_contiguous and indices.flags.c_contiguous
     assert np.array_equal(indptr, a.indptr) and np.array_equal(indices, a.indices)
     assert indptr[-1] == indices.size == a.nnz
     indices[0] = -1  # a copy: the matrix is untouched

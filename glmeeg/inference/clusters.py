@@ -23,7 +23,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit, prange
+from numba import get_num_threads, njit, prange
 
 __all__ = ["label_clusters", "cluster_table", "max_cluster_statistic"]
 
@@ -35,8 +35,8 @@ _TAILS = ("both", "positive", "negative")
 # validation (shared with tfce.py)
 
 def check_graph(indptr, indices, n_points: int | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Return ``indptr`` and ``indices`` as C-contiguous int64 arrays after checking that they
-    form a CSR graph (over ``n_points`` points if given). Raises ValueError."""
+    """Return ``indptr`` (int64) and ``indices`` (int32) as C-contiguous arrays after checking
+    that they form a CSR graph (over ``n_points`` points if given). Raises ValueError."""
     indptr = np.ascontiguousarray(indptr)
     indices = np.ascontiguousarray(indices)
     for name, a in (("indptr", indptr), ("indices", indices)):
@@ -44,7 +44,6 @@ def check_graph(indptr, indices, n_points: int | None = None) -> tuple[np.ndarra
             raise ValueError(f"{name} must be a 1-D integer array, got dtype {a.dtype} with "
                              f"shape {a.shape}")
     indptr = indptr.astype(np.int64, copy=False)
-    indices = indices.astype(np.int64, copy=False)
     if indptr.size < 1:
         raise ValueError("indptr must have n_points + 1 entries, got an empty array")
     p = indptr.size - 1
@@ -61,7 +60,7 @@ def check_graph(indptr, indices, n_points: int | None = None) -> tuple[np.ndarra
     if indices.size and (indices.min() < 0 or indices.max() >= p):
         raise ValueError(f"indices must lie in [0, {p}), got values from {indices.min()} to "
                          f"{indices.max()}")
-    return indptr, indices
+    return indptr, indices.astype(np.int32, copy=False)
 
 
 def check_finite(values: np.ndarray, name: str) -> None:
@@ -138,7 +137,7 @@ def _label_one(x, indptr, indices, thr, sign, labels, stack, first):  # pragma: 
 @njit(cache=True, nogil=True)
 def _label_kernel(x, indptr, indices, thr):  # pragma: no cover - compiled
     labels = np.zeros(x.size, dtype=np.int32)
-    stack = np.empty(x.size, dtype=np.int64)
+    stack = np.empty(x.size, dtype=np.int32)
     first = 1
     _label_one(x, indptr, indices, thr, 1.0, labels, stack, first)
     return labels
@@ -182,16 +181,18 @@ def _max_cluster_one(x, indptr, indices, thr, want_pos, want_neg, use_mass, labe
 
 
 @njit(parallel=True, cache=True, nogil=True)
-def _max_cluster_kernel(maps, indptr, indices, thr, want_pos, want_neg,
-                        use_mass):  # pragma: no cover - compiled
+def _max_cluster_kernel(maps, indptr, indices, thr, want_pos, want_neg, use_mass,
+                        n_runs):  # pragma: no cover - compiled
     n_maps, n = maps.shape
     out = np.zeros((n_maps, 2))
-    for b in prange(n_maps):
-        # Scratch per map: 12 bytes a point, small next to the work of labelling the map.
+    # ``n_runs`` runs of consecutive maps (one per thread), with their own work space (8 bytes
+    # a point), reused from map to map; every map is computed on its own, whatever the split.
+    for r in prange(n_runs):
         labels = np.empty(n, dtype=np.int32)
-        stack = np.empty(n, dtype=np.int64)
-        _max_cluster_one(maps[b], indptr, indices, thr, want_pos, want_neg, use_mass, labels,
-                         stack, out[b])
+        stack = np.empty(n, dtype=np.int32)
+        for b in range(r * n_maps // n_runs, (r + 1) * n_maps // n_runs):
+            _max_cluster_one(maps[b], indptr, indices, thr, want_pos, want_neg, use_mass,
+                             labels, stack, out[b])
     return out
 
 
@@ -358,5 +359,6 @@ def max_cluster_statistic(maps, indptr, indices, threshold, *, statistic: str = 
         raise ValueError(f"threshold must be >= 0 when tails is 'both', got {thr}")
     indptr, indices = check_graph(indptr, indices)
     m = check_maps(maps, indptr.size - 1)
+    runs = max(1, min(m.shape[0], get_num_threads()))
     return _max_cluster_kernel(m, indptr, indices, thr, tails != "negative",
-                               tails != "positive", statistic == "mass")
+                               tails != "positive", statistic == "mass", runs)

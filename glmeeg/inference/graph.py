@@ -136,7 +136,7 @@ def points_graph(sensor_adjacency, shape) -> sp.csr_matrix:
 
 
 def graph_arrays(graph) -> tuple[np.ndarray, np.ndarray]:
-    """The CSR structure of a graph as two contiguous int64 arrays, for compiled kernels.
+    """The CSR structure of a graph as two contiguous arrays, for compiled kernels.
 
     Parameters
     ----------
@@ -149,7 +149,8 @@ def graph_arrays(graph) -> tuple[np.ndarray, np.ndarray]:
         ``(n_points + 1,)`` int64: the neighbours of point ``i`` are
         ``indices[indptr[i]:indptr[i + 1]]``.
     indices : numpy.ndarray
-        ``(nnz,)`` int64, sorted within each point.
+        ``(nnz,)`` int32 (points are int32 in the kernels), sorted within each point. Half
+        the bytes of int64, which the kernels' random reads of neighbours feel.
 
     Raises
     ------
@@ -173,5 +174,7 @@ def graph_arrays(graph) -> tuple[np.ndarray, np.ndarray]:
     g.sum_duplicates()
     g.eliminate_zeros()
     g.sort_indices()
+    if g.shape[0] >= 2**31 - 1:
+        raise ValueError(f"the graph must have fewer than 2**31 - 1 points, got {g.shape[0]}")
     return (np.ascontiguousarray(g.indptr, dtype=np.int64),
-            np.ascontiguousarray(g.indices, dtype=np.int64))
+            np.ascontiguousarray(g.indices, dtype=np.int32))

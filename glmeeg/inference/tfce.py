@@ -40,7 +40,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit, prange
+from numba import get_num_threads, njit, prange
 
 from .clusters import check_finite, check_graph, check_maps
 
@@ -66,18 +66,29 @@ def _extent_powers(n_points: int, extent_exponent: float) -> np.ndarray:
 # kernels
 
 @njit(cache=True, nogil=True)
-def _argsort_radix(x):  # pragma: no cover - compiled
+def _scratch(n):  # pragma: no cover - compiled
+    """Work arrays of one TFCE computation on ``n`` points, reused from map to map (fresh
+    allocations of this size are page-faulted in on every map when the allocator hands them
+    back to the system, as it does in Dask workers)."""
+    return (np.empty(n, dtype=np.uint64), np.empty(n, dtype=np.uint64),
+            np.empty(n, dtype=np.int32), np.empty(n, dtype=np.int32),
+            np.empty((6, 2048), dtype=np.int64), np.empty(n, dtype=np.int8),
+            np.empty(n, dtype=np.int32), np.empty(n, dtype=np.int32),
+            np.empty(n, dtype=np.int32), np.empty(n, dtype=np.int32))
+
+
+@njit(cache=True, nogil=True)
+def _argsort_radix(x, keys, keys2, idx, idx2, count):  # pragma: no cover - compiled
     """Stable ascending argsort of finite float64 values: least-significant-digit radix sort
     on the IEEE bit patterns (six passes of 11 bits; a pass whose digit is the same for every
     value is skipped). About three times faster than numba's quicksort ``np.argsort`` on maps
-    of 32,000 points, and deterministic for ties. -0.0 sorts before +0.0, harmless here."""
+    of 32,000 points, and deterministic for ties. -0.0 sorts before +0.0, harmless here.
+
+    ``keys``, ``keys2`` (uint64), ``idx``, ``idx2`` (int32, all of ``x.size``) and ``count``
+    (6 x 2048 int64) are work space. Returns the order and the other int32 buffer, now free."""
     n = x.size
     bits = x.view(np.uint64)
-    keys = np.empty(n, dtype=np.uint64)
-    keys2 = np.empty(n, dtype=np.uint64)
-    idx = np.empty(n, dtype=np.int32)
-    idx2 = np.empty(n, dtype=np.int32)
-    count = np.zeros((6, 2048), dtype=np.int64)
+    count[:, :] = 0
     sign = np.uint64(1) << np.uint64(63)
     mask = np.uint64(2047)
     for i in range(n):
@@ -117,7 +128,7 @@ def _argsort_radix(x):  # pragma: no cover - compiled
             idx2[pos] = idx[i]
         keys, keys2 = keys2, keys
         idx, idx2 = idx2, idx
-    return idx
+    return idx, idx2
 
 
 @njit(cache=True, nogil=True)
@@ -183,10 +194,16 @@ def _sweep(x, order, start, stop, step, sign, pass_id, indptr, indices, ext_pow,
 
 
 @njit(cache=True, nogil=True)
-def _tfce_one(x, indptr, indices, ext_pow, a1, out):  # pragma: no cover - compiled
-    """Signed TFCE of one map into ``out`` (all points written)."""
+def _tfce_one(x, indptr, indices, ext_pow, a1, out, work):  # pragma: no cover - compiled
+    """Signed TFCE of one map into ``out`` (all points written); ``work`` from
+    :func:`_scratch`."""
     n = x.size
-    order = _argsort_radix(x)
+    keys, keys2, idx, idx2, count, mark, parent, size, current, below = work
+    order, extent = _argsort_radix(x, keys, keys2, idx, idx2, count)
+    # The sort's other buffers are free now: the segment heights, integrals and extents
+    # live in them (8 + 8 + 4 bytes a point less to keep in cache).
+    top = keys.view(np.float64)
+    cum = keys2.view(np.float64)
     # order: negative values first (most negative first), positive values last.
     n_neg = 0
     while n_neg < n and x[order[n_neg]] < 0.0:
@@ -196,15 +213,7 @@ def _tfce_one(x, indptr, indices, ext_pow, a1, out):  # pragma: no cover - compi
         n_nonpos += 1
     for k in range(n_neg, n_nonpos):
         out[order[k]] = 0.0
-    m = max(n_neg, n - n_nonpos)
-    mark = np.zeros(n, dtype=np.int8)
-    parent = np.empty(n, dtype=np.int32)
-    size = np.empty(n, dtype=np.int32)
-    current = np.empty(n, dtype=np.int32)
-    top = np.empty(m)
-    extent = np.empty(m, dtype=np.int32)
-    below = np.empty(m, dtype=np.int32)
-    cum = np.empty(m)
+    mark[:] = 0
     _sweep(x, order, n - 1, n_nonpos - 1, -1, 1.0, 1, indptr, indices, ext_pow, a1, mark,
            parent, size, current, top, extent, below, cum, out)
     _sweep(x, order, 0, n_neg, 1, -1.0, 2, indptr, indices, ext_pow, a1, mark,
@@ -214,27 +223,31 @@ def _tfce_one(x, indptr, indices, ext_pow, a1, out):  # pragma: no cover - compi
 @njit(cache=True, nogil=True)
 def _tfce_kernel(x, indptr, indices, ext_pow, a1):  # pragma: no cover - compiled
     out = np.empty(x.size)
-    _tfce_one(x, indptr, indices, ext_pow, a1, out)
+    _tfce_one(x, indptr, indices, ext_pow, a1, out, _scratch(x.size))
     return out
 
 
 @njit(parallel=True, cache=True, nogil=True)
-def _max_tfce_kernel(maps, indptr, indices, ext_pow, a1):  # pragma: no cover - compiled
+def _max_tfce_kernel(maps, indptr, indices, ext_pow, a1, n_runs):  # pragma: no cover - compiled
     n_maps, n = maps.shape
     res = np.zeros((n_maps, 2))
-    for b in prange(n_maps):
+    # ``n_runs`` runs of consecutive maps (one per thread), each with its own work space;
+    # every map is computed on its own, so the result does not depend on the split.
+    for r in prange(n_runs):
+        work = _scratch(n)
         out = np.empty(n)
-        _tfce_one(maps[b], indptr, indices, ext_pow, a1, out)
-        hi = 0.0
-        lo = 0.0
-        for i in range(n):
-            v = out[i]
-            if v > hi:
-                hi = v
-            elif v < lo:
-                lo = v
-        res[b, 0] = hi
-        res[b, 1] = 0.0 - lo  # not -lo: no -0.0 for an empty part
+        for b in range(r * n_maps // n_runs, (r + 1) * n_maps // n_runs):
+            _tfce_one(maps[b], indptr, indices, ext_pow, a1, out, work)
+            hi = 0.0
+            lo = 0.0
+            for i in range(n):
+                v = out[i]
+                if v > hi:
+                    hi = v
+                elif v < lo:
+                    lo = v
+            res[b, 0] = hi
+            res[b, 1] = 0.0 - lo  # not -lo: no -0.0 for an empty part
     return res
 
 
@@ -358,4 +371,5 @@ def max_tfce(maps, indptr, indices, *, extent_exponent: float = 0.5,
     indptr, indices = check_graph(indptr, indices)
     n = indptr.size - 1
     m = check_maps(maps, n)
-    return _max_tfce_kernel(m, indptr, indices, _extent_powers(n, e_exp), h_exp + 1.0)
+    runs = max(1, min(m.shape[0], get_num_threads()))
+    return _max_tfce_kernel(m, indptr, indices, _extent_powers(n, e_exp), h_exp + 1.0, runs)
