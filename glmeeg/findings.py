@@ -141,7 +141,8 @@ def significant_regions(significant: np.ndarray, statistic: np.ndarray,
     offset = 0
     for sign in (1.0, -1.0):
         mask = (significant & (sign * statistic > 0)).astype(np.float64)
-        lab = label_clusters(np.ascontiguousarray(mask), indptr, indices, 0.5)
+        lab = label_clusters(np.ascontiguousarray(mask), indptr, indices, 0.5,
+                             grid=getattr(graph, "grid", None))
         labels[lab > 0] = lab[lab > 0] + offset
         offset += int(lab.max())
     return labels

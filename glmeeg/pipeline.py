@@ -212,7 +212,7 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
 def _neighbour_graph(spec: DesignSpec, study: Study, root, *, required: bool, warnings: list):
     """Sensor neighbours and the graph of points, for cluster and TFCE corrections."""
     from .errors import GlmeegError
-    from .inference.graph import graph_arrays, points_graph
+    from .inference.graph import map_graph
     from .neighbours import sensor_graph
     from .study import read_neighbour_table
 
@@ -233,7 +233,7 @@ def _neighbour_graph(spec: DesignSpec, study: Study, root, *, required: bool, wa
     if sg.isolated:
         warnings.append(f"{len(sg.isolated)} sensor(s) have no neighbours and form clusters on their "
                         f"own: {', '.join(sg.isolated)}")
-    return sg, graph_arrays(points_graph(sg.adjacency(), study.axes.shape)), extra
+    return sg, map_graph(sg.adjacency(), study.axes.shape), extra
 
 
 @dataclass(frozen=True)

@@ -240,7 +240,7 @@ def _whole(value, name: str, *, least: int) -> int:
 def _points_graph(graph, result: TestResult) -> tuple[tuple[np.ndarray, np.ndarray], str]:
     """The points' neighbour graph as CSR arrays, and how it was obtained."""
     from .errors import GlmeegError
-    from .inference.graph import graph_arrays, points_graph
+    from .inference.graph import map_graph
     from .neighbours import SensorGraph, sensor_graph
 
     P = result.axes.n_points
@@ -271,7 +271,7 @@ def _points_graph(graph, result: TestResult) -> tuple[tuple[np.ndarray, np.ndarr
         return (indptr, indices), "the points graph given"
     if sg.isolated:
         how += f"; {len(sg.isolated)} sensor(s) without neighbours: {', '.join(sg.isolated)}"
-    return graph_arrays(points_graph(sg.adjacency(), result.axes.shape)), how
+    return map_graph(sg.adjacency(), result.axes.shape), how
 
 
 def _wilson(k: int, n: int, level: float) -> tuple[float, float]:
@@ -413,7 +413,7 @@ def simulate_power(result: TestResult, *, n: int | Sequence[int], simulations: i
     if Y.shape != (n0, k, P) or G.shape != (n0, len(result.group_columns)) or L.shape[1] != G.shape[1]:
         raise ModelError(f"result: test {result.name!r} has inconsistent arrays (subject estimates "
                          f"{Y.shape}, group design {G.shape}, group contrast {L.shape})")
-    q, m = G.shape[1], L.shape[0]
+    q = G.shape[1]
     method = result.spec.group_method
     trim = 0.2 if result.spec.trim is None else result.spec.trim
     layout = _layout(G, result.group_columns)

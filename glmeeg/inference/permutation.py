@@ -334,14 +334,15 @@ def _batch_max(work: _NullWork, maps: np.ndarray, best: np.ndarray) -> np.ndarra
     if work.method == "max":
         return best
     indptr, indices = work.graph
+    grid = getattr(work.graph, "grid", None)
     if work.method == "cluster":
         from .clusters import max_cluster_statistic
         both = max_cluster_statistic(maps, indptr, indices, work.threshold, statistic=c.statistic,
-                                     tails="both" if work.two_tails else "positive")
+                                     tails="both" if work.two_tails else "positive", grid=grid)
     else:
         from .tfce import max_tfce
         both = max_tfce(maps, indptr, indices, extent_exponent=c.extent_exponent,
-                        height_exponent=c.height_exponent)
+                        height_exponent=c.height_exponent, grid=grid)
     return both.max(axis=1) if work.two_tails else both[:, 0]
 
 
@@ -405,7 +406,9 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
         The correction and its settings (resamplings, seed, scheme, threshold, exponents).
     graph : tuple of numpy.ndarray, optional
         ``(indptr, indices)`` of the points' neighbour graph (CSR); required for cluster and
-        TFCE corrections.
+        TFCE corrections. A :class:`~glmeeg.inference.graph.PointGraph` (from
+        :func:`~glmeeg.inference.graph.map_graph`) also carries the product form, which the
+        kernels read instead (same results, about half the time on large maps).
     method : {"glm", "trimmed", "welch"}, default "glm"
         The statistic resampled: the group GLM's t or F (Freedman-Lane), the trimmed-mean t
         (one sample: Tukey-McLaughlin, under sign-flipping; two groups: Yuen, under
@@ -479,6 +482,7 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
     two_tails = kind == "t" and alternative == "two-sided"
     sign = -1.0 if (kind == "t" and alternative == "less") else 1.0
     indptr, indices = graph if graph is not None else (None, None)
+    grid = getattr(graph, "grid", None)
 
     mode = 1 if (kind == "F" or alternative == "greater") else (2 if alternative == "less" else 0)
 
@@ -530,7 +534,7 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
     if correction.method == "tfce":
         from .tfce import tfce
         enhanced = tfce(directed_obs, indptr, indices, extent_exponent=correction.extent_exponent,
-                        height_exponent=correction.height_exponent)
+                        height_exponent=correction.height_exponent, grid=grid)
         score = enhanced if not two_tails else np.abs(enhanced)
         score = np.where(score > 0, score, 0.0)
         p_corr = np.where(score > 0, p_of(_at_least(null, score)), 1.0)
@@ -541,7 +545,7 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
     clusters = []
     for tail in ((1.0, -1.0) if two_tails else (1.0,)):
         vals = np.ascontiguousarray(tail * directed_obs)
-        lab = label_clusters(vals, indptr, indices, threshold)
+        lab = label_clusters(vals, indptr, indices, threshold, grid=grid)
         if lab.max() == 0:
             continue
         mass, extent = cluster_table(vals, lab)
