@@ -39,12 +39,12 @@ TARGET = 1.7
 
 
 def problem():
-    from glmeeg.inference.graph import graph_arrays, points_graph
+    from glmeeg.inference.graph import map_graph
     from glmeeg.neighbours import sensor_graph
 
     sg = sensor_graph(pd.DataFrame({"name": CHANNELS_64}))
     shape = (64, N_FREQS, N_TIMES)
-    graph = graph_arrays(points_graph(sg.adjacency(), shape))
+    graph = map_graph(sg.adjacency(), shape)  # as glmeeg run builds it
     rng = np.random.default_rng(20261202)
     Y = gaussian_filter(rng.standard_normal((N_SUBJECTS,) + shape), sigma=(0, 0, 1.5, 3.0))
     return Y.reshape(N_SUBJECTS, -1), graph
@@ -77,11 +77,11 @@ def on_cluster(n_workers, Y, graph, permutations):
 
 
 def _small_graph():
-    from glmeeg.inference.graph import graph_arrays, points_graph
+    from glmeeg.inference.graph import map_graph
     from glmeeg.neighbours import sensor_graph
 
     sg = sensor_graph(pd.DataFrame({"name": CHANNELS_64}))
-    return graph_arrays(points_graph(sg.adjacency(), (64, 1, 31)))
+    return map_graph(sg.adjacency(), (64, 1, 31))
 
 
 def main() -> None:

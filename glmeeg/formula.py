@@ -9,7 +9,11 @@ list of several is a joint contrast (one row each).
 Formulas come from design files that labs share, and patsy evaluates formula terms as Python.
 Before anything is evaluated, every term is parsed and checked: only table columns, numbers,
 strings and the functions in :data:`FORMULA_FUNCTIONS` may appear; attribute access, subscripts,
-dunder names and calls of anything else are refused.
+dunder names and calls of anything else are refused. Values that would make evaluation itself
+costly are refused too: text and lists only as function arguments, powers only of columns and
+by a small number (``x ** 2``), integers of at most 15 digits. ``Q("name")`` must quote a
+column. Contrast strings are parsed by patsy's constraint parser, which evaluates nothing;
+their names must be design columns.
 """
 
 from __future__ import annotations
@@ -49,6 +53,61 @@ def _factor_codes(formula: str, *, where: str) -> list[str]:
     return [f.code for term in desc.rhs_termlist for f in term.factors]
 
 
+_MAX_EXPONENT = 16
+
+
+def _refuse(where: str, code: str, what: str):
+    raise FormulaError(f"{where}: term {code!r} {what}")
+
+
+def _check_values(tree: ast.AST, code: str, *, where: str) -> None:
+    """Refuse values that would make evaluation itself costly or strange: text, lists and
+    tuples are allowed only as arguments of a call (``C(x, Treatment('b'))``), constants only
+    as numbers, text, True, False or None, and a power needs a small number as its exponent
+    and a column in its base (``x ** 2``; not ``9 ** 9 ** 9``)."""
+    args = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Call):
+            args.update(id(a) for a in node.args)
+            if any(k.arg is None for k in node.keywords):
+                _refuse(where, code, "passes ** keyword arguments, which formulas may not contain")
+            args.update(id(k.value) for k in node.keywords)
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Constant):
+            v = node.value
+            if v is not None and not isinstance(v, (bool, int, float, str)):
+                _refuse(where, code, f"holds the constant {v!r}; only numbers and text may appear")
+            if isinstance(v, str) and id(node) not in args:
+                _refuse(where, code, f"uses the text {v!r} outside a function argument")
+            if isinstance(v, int) and not isinstance(v, bool) and abs(v) > 10**15:
+                _refuse(where, code, f"holds the number {v}, larger than formulas allow")
+        elif isinstance(node, (ast.List, ast.Tuple)) and id(node) not in args:
+            _refuse(where, code, "uses a list or tuple outside a function argument")
+        elif isinstance(node, ast.BinOp) and isinstance(node.op, ast.Pow):
+            e = node.right
+            if isinstance(e, ast.UnaryOp) and isinstance(e.op, (ast.USub, ast.UAdd)):
+                e = e.operand
+            if not (isinstance(e, ast.Constant) and isinstance(e.value, (int, float))
+                    and not isinstance(e.value, bool) and abs(e.value) <= _MAX_EXPONENT):
+                _refuse(where, code, f"raises to a power that is not a number of at most "
+                        f"{_MAX_EXPONENT} (write e.g. x ** 2)")
+            if not any(isinstance(n, ast.Name) and n.id not in FORMULA_FUNCTIONS
+                       for n in ast.walk(node.left)):
+                _refuse(where, code, "raises a number to a power; only columns may be raised")
+
+
+def _quoted_column(node: ast.Call, code: str, columns: set, *, where: str, source: str) -> str:
+    """The column named by ``Q("name")`` (patsy's quoting of names that are not identifiers)."""
+    if (len(node.args) != 1 or node.keywords or not isinstance(node.args[0], ast.Constant)
+            or not isinstance(node.args[0].value, str)):
+        _refuse(where, code, "uses Q() without a single quoted column name, e.g. Q(\"reaction time\")")
+    name = node.args[0].value
+    if name not in columns:
+        raise FormulaError(f"{where}: {name!r} is not a column of {source} "
+                           f"(columns: {', '.join(sorted(columns))})")
+    return name
+
+
 def formula_variables(formula: str, columns, *, where: str, source: str) -> tuple[str, ...]:
     """Check a formula's terms and return the table columns it uses, in order of appearance.
 
@@ -73,6 +132,12 @@ def formula_variables(formula: str, columns, *, where: str, source: str) -> tupl
                 raise FormulaError(f"{where}: term {code!r} uses {type(node).__name__.lower()} "
                                    "syntax, which formulas may not contain (allowed: column names, "
                                    f"numbers, operators and the functions {', '.join(FORMULA_FUNCTIONS)})")
+        _check_values(tree, code, where=where)
+        for node in ast.walk(tree):
+            if isinstance(node, ast.Call) and isinstance(node.func, ast.Name) and node.func.id == "Q":
+                name = _quoted_column(node, code, columns, where=where, source=source)
+                if name not in used:
+                    used.append(name)
         for node in ast.walk(tree):
             if isinstance(node, ast.Call) and not (isinstance(node.func, ast.Name)
                                                    and node.func.id in FORMULA_FUNCTIONS):
@@ -166,6 +231,8 @@ def _prepare(table: pd.DataFrame, variables: tuple[str, ...], levels: dict[str, 
         text = text.where(col.notna(), None)
         if known is None:
             known = tuple(sorted({t for t in text if t is not None}))
+            if not known:
+                raise FormulaError(f"{source}: column {v!r} has no values (every entry is missing)")
         else:
             stray = sorted({t for t in text if t is not None and t not in known})
             if stray:
@@ -216,6 +283,10 @@ def build_design(table: pd.DataFrame, formula: str, *, levels: dict[str, list[st
             frame = patsy.dmatrix(formula, data, eval_env=_env(), NA_action="drop", return_type="dataframe")
     except patsy.PatsyError as e:
         raise FormulaError(f"{where}: {str(e).splitlines()[0]}") from None
+    except (ValueError, TypeError, ArithmeticError, IndexError) as e:
+        # Raised by the transforms on unusable data (e.g. a coding of too few levels).
+        raise FormulaError(f"{where}: formula {formula!r} cannot be evaluated on {source} "
+                           f"({type(e).__name__}: {(str(e).splitlines() or [''])[0]})") from None
     if frame.shape[1] == 0:
         raise FormulaError(f"{where}: formula {formula!r} gives no design columns")
     present = data.notna().all(axis=1) if variables else pd.Series(True, index=data.index)
@@ -293,6 +364,9 @@ def design_matrix(design: Design, table: pd.DataFrame, *, who: str) -> DesignMat
                                                return_type="dataframe")
     except patsy.PatsyError as e:
         raise FormulaError(f"{who}: {str(e).splitlines()[0]}") from None
+    except (ValueError, TypeError, ArithmeticError, IndexError) as e:
+        raise FormulaError(f"{who}: the design cannot be evaluated on these rows "
+                           f"({type(e).__name__}: {(str(e).splitlines() or [''])[0]})") from None
     kept = np.asarray(data.index.isin(frame.index))
     X = np.ascontiguousarray(frame.to_numpy(np.float64))
     cond = _check_columns(X, design, who=who)
@@ -328,9 +402,12 @@ def contrast_matrix(design: Design, spec, *, where: str) -> ContrastMatrix:
     labels: list[str] = []
     for item in items:
         if isinstance(item, str):
+            if not item.strip():
+                raise ContrastError(f"{where}: an empty contrast; give a column name, e.g. "
+                                    f"{names[-1]!r}")
             try:
                 lc = design._info.linear_constraint(item)
-            except (patsy.PatsyError, ValueError) as e:
+            except (patsy.PatsyError, ValueError, IndexError, TypeError, KeyError) as e:
                 raise ContrastError(f"{where}: {item!r} does not name design columns "
                                     f"(columns: {', '.join(names)}); {str(e).splitlines()[0]}") from None
             if np.any(lc.constants != 0):
@@ -341,12 +418,19 @@ def contrast_matrix(design: Design, spec, *, where: str) -> ContrastMatrix:
                 rows.append(np.asarray(r, dtype=float))
                 labels.append(lab)
         else:
-            vec = np.asarray(item, dtype=float)
+            try:
+                vec = np.asarray(item, dtype=float)
+            except (TypeError, ValueError):
+                raise ContrastError(f"{where}: {item!r} is neither a column name nor a vector of "
+                                    "weights") from None
             if vec.ndim != 1 or vec.size != len(names):
                 raise ContrastError(f"{where}: vector {_vector_label(np.ravel(vec))} has {vec.size} weights; "
                                     f"the design has {len(names)} columns ({', '.join(names)})")
             rows.append(vec)
             labels.append(_vector_label(vec))
+    if not rows:
+        raise ContrastError(f"{where}: no contrast given; give a column name, a vector of weights "
+                            "or a list of them")
     C = np.vstack(rows)
     if not np.all(np.isfinite(C)):
         raise ContrastError(f"{where}: weights must be finite numbers")

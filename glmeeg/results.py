@@ -90,6 +90,35 @@ def _need(module: str, what: str, extra: str):
         raise GlmeegError(f"{what} needs {module}: pip install 'glmeeg[{extra}]'") from None
 
 
+def _created() -> str:
+    """When the run was made (UTC, ISO 8601), or ``SOURCE_DATE_EPOCH`` when that is set: the
+    reproducible-builds convention, which makes two runs on the same inputs byte-identical."""
+    fixed = os.environ.get("SOURCE_DATE_EPOCH")
+    if fixed is not None:
+        try:
+            when = datetime.fromtimestamp(int(fixed), timezone.utc)
+        except (ValueError, OverflowError, OSError):
+            raise GlmeegError(f"SOURCE_DATE_EPOCH: {fixed!r} is not a number of seconds since "
+                              "1970-01-01") from None
+    else:
+        when = datetime.now(timezone.utc)
+    return when.isoformat(timespec="seconds")
+
+
+# Zip entries carry a time stamp; a fixed one keeps result.npz byte-identical across runs.
+_ZIP_TIME = (1980, 1, 1, 0, 0, 0)
+
+
+def _write_npz(fh, arrays: dict) -> None:
+    """``numpy.savez`` with fixed entry times and modes (read back by ``numpy.load``)."""
+    with zipfile.ZipFile(fh, "w", compression=zipfile.ZIP_STORED, allowZip64=True) as zf:
+        for name, value in arrays.items():
+            info = zipfile.ZipInfo(f"{name}.npy", date_time=_ZIP_TIME)
+            info.external_attr = 0o644 << 16
+            with zf.open(info, "w", force_zip64=True) as f:
+                np.lib.format.write_array(f, np.asanyarray(value), allow_pickle=False)
+
+
 def _write_atomically(path: Path, write, *, label: str) -> Path:
     """Call ``write(tmp)`` on a temporary file beside ``path``, then rename it into place.
 
@@ -140,7 +169,7 @@ def provenance(*, design_file: Path | None = None, inputs: dict[str, Path] | Non
                       numpy_version=np.__version__, scipy_version=scipy.__version__,
                       pandas_version=pd.__version__, patsy_version=patsy.__version__,
                       platform=platform.platform(),
-                      created=datetime.now(timezone.utc).isoformat(timespec="seconds"),
+                      created=_created(),
                       design_file=str(design_file) if design_file else None, input_sha256=hashes)
 
 
@@ -657,7 +686,7 @@ class TestResult(_Frozen):
         arrays = {k: np.asarray(getattr(self, k)) for k in _ARRAYS + _OPTIONAL_ARRAYS
                   if getattr(self, k) is not None}
         with open(folder / "result.npz", "wb") as fh:
-            np.savez(fh, meta=np.array(json.dumps(meta)), **arrays)
+            _write_npz(fh, {"meta": np.array(json.dumps(meta)), **arrays})
         self.to_frame().to_csv(folder / "points.csv", index=False, float_format="%.10g")
         if self.resampling is not None:
             self.clusters_frame().to_csv(folder / "clusters.csv", index=False, float_format="%.10g")
@@ -878,21 +907,120 @@ def check_output_folder(out: str | Path) -> Path:
     return out
 
 
+def _exchange(a: Path, b: Path) -> bool:
+    """Swap two folders in one atomic step (Linux ``renameat2(RENAME_EXCHANGE)``); False where
+    the system or the file system cannot."""
+    import ctypes
+    import errno
+    import sys
+
+    if not sys.platform.startswith("linux"):
+        return False
+    try:
+        libc = ctypes.CDLL(None, use_errno=True)
+        fn = libc.renameat2
+    except (OSError, AttributeError):
+        return False
+    fn.argtypes = (ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p, ctypes.c_uint)
+    at_fdcwd, rename_exchange = -100, 2
+    if fn(at_fdcwd, os.fsencode(a), at_fdcwd, os.fsencode(b), rename_exchange) == 0:
+        return True
+    err = ctypes.get_errno()
+    if err in (errno.EINVAL, errno.ENOSYS, errno.EOPNOTSUPP):
+        return False
+    raise OSError(err, os.strerror(err), str(b))
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _leftovers(out: Path):
+    """Folders a killed :func:`write_run` of ``out`` left beside it, with the writer's pid:
+    ``.NAME.PID.*.partial`` (results being written, or the earlier ones after the swap) and
+    ``.NAME.PID.old`` (the earlier results between the two renames of the fallback swap)."""
+    import re
+
+    pattern = re.compile(rf"\.{re.escape(out.name)}\.(\d+)\.(old|[A-Za-z0-9_]+\.partial)")
+    try:
+        entries = list(out.parent.iterdir())
+    except OSError:
+        return
+    for p in entries:
+        m = pattern.fullmatch(p.name)
+        if m and p.is_dir() and not p.is_symlink():
+            yield p, int(m.group(1)), m.group(2) == "old"
+
+
+def recover_results(out: str | Path) -> None:
+    """Repair what a killed :func:`write_run` left: put the earlier results back when the kill
+    fell between the two renames of the fallback swap (``out`` missing), and remove partial
+    folders of writers that are no longer running. Called before writing and loading."""
+    out = Path(out)
+    for p, pid, old in list(_leftovers(out)):
+        if _pid_alive(pid) and pid != os.getpid():
+            continue
+        if old and not (out.exists() or out.is_symlink()):
+            os.replace(p, out)
+        else:
+            shutil.rmtree(p, ignore_errors=True)
+
+
+def _fsync_tree(folder: Path) -> None:
+    """Flush every file under ``folder`` and the folders themselves to disk, so that the swap
+    never exposes a folder whose files a crash of the machine could still lose."""
+    for dirpath, _, files in os.walk(folder):
+        for name in files:
+            fd = os.open(os.path.join(dirpath, name), os.O_RDONLY)
+            try:
+                os.fsync(fd)
+            finally:
+                os.close(fd)
+        _fsync_dir(Path(dirpath))
+
+
+def _fsync_dir(folder: Path) -> None:
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
 def write_run(run: RunResult, out: str | Path, *, report: str | None = None) -> Path:
     """Write a run into folder ``out`` atomically (with ``report.html`` when ``report`` is given).
 
-    Everything is written into a temporary folder next to ``out`` and renamed into place at the
-    end, so a failed run leaves no partial folder and an earlier result at ``out`` stays intact
-    until the new one is complete. The subject-fit cache ``out/subject-fits`` is carried over.
+    Everything is written into a temporary folder next to ``out``, flushed to disk and swapped
+    into place in one step (``renameat2(RENAME_EXCHANGE)`` on Linux; elsewhere two renames, and
+    a kill between them is repaired by :func:`recover_results` on the next write or load).
+    So a run that fails or is killed leaves the earlier result at ``out`` complete and
+    loadable, and never a partial folder under its name. The subject-fit cache
+    ``out/subject-fits`` is carried over.
 
     Raises
     ------
     GlmeegError
         ``out`` exists, is not empty and is not a glmeeg result folder.
     """
+    from .cache import CACHE_FOLDER
+
+    out = Path(out)
+    recover_results(out)
     out = check_output_folder(out)
     out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.{os.getpid()}.", suffix=".partial",
+                                dir=out.parent))
     umask = os.umask(0)
     os.umask(umask)
     os.chmod(tmp, 0o777 & ~umask)  # mkdtemp makes the folder private; give it the usual mode
@@ -902,26 +1030,39 @@ def write_run(run: RunResult, out: str | Path, *, report: str | None = None) -> 
         (tmp / "run.json").write_text(json.dumps(run.run_summary(), indent=2, default=_plain) + "\n")
         if report is not None:
             (tmp / "report.html").write_text(report, encoding="utf-8")
+        _fsync_tree(tmp)
         if out.exists():
-            from .cache import CACHE_FOLDER
-
             if (out / CACHE_FOLDER).is_dir():  # the subject-fit cache stays with the results
                 os.replace(out / CACHE_FOLDER, tmp / CACHE_FOLDER)
-            old = out.with_name(f".{out.name}.{os.getpid()}.old")
-            os.replace(out, old)
-            os.replace(tmp, out)
-            shutil.rmtree(old, ignore_errors=True)
+            if not _exchange(tmp, out):
+                old = out.with_name(f".{out.name}.{os.getpid()}.old")
+                os.replace(out, old)
+                try:
+                    os.replace(tmp, out)
+                except BaseException:
+                    os.replace(old, out)
+                    raise
+                tmp = old
         else:
             os.replace(tmp, out)
+            tmp = None
+        _fsync_dir(out.parent)
     except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
+        if tmp is not None and tmp.exists():
+            if (tmp / CACHE_FOLDER).is_dir() and out.is_dir() and not (out / CACHE_FOLDER).exists():
+                os.replace(tmp / CACHE_FOLDER, out / CACHE_FOLDER)  # the cache goes back
+            shutil.rmtree(tmp, ignore_errors=True)
         raise
+    if tmp is not None:
+        shutil.rmtree(tmp, ignore_errors=True)  # the earlier results, swapped out
     return out
 
 
 def load_run_result(folder: str | Path) -> RunResult:
     """Read a whole run folder back as a :class:`RunResult` (``run.json`` and every test)."""
     folder = Path(folder)
+    if not folder.exists():
+        recover_results(folder)
     path = folder / "run.json"
     if not path.is_file():
         raise GlmeegError(f"{folder}: not a glmeeg run folder (no run.json)")
@@ -943,6 +1084,8 @@ def load_run_result(folder: str | Path) -> RunResult:
 def load_run(folder: str | Path) -> list[TestResult]:
     """Load every test of a run folder (or the single test of a test folder)."""
     folder = Path(folder)
+    if not folder.exists():
+        recover_results(folder)
     if (folder / "result.npz").is_file():
         return [load_result(folder)]
     run = folder / "run.json"

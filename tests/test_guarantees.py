@@ -1,0 +1,247 @@
+"""The guarantees a lab relies on: atomic results, byte-identical reruns, no code from design files.
+
+* A real ``glmeeg run`` process is killed with SIGKILL (no clean-up of any kind) while it writes
+  its results over an earlier run's: at three moments (while the test folders are being written;
+  between the two renames of the swap used where the system cannot exchange two folders in one
+  step; after the swap, before the earlier results are removed). Each time the output folder
+  must load as one complete run, the earlier one or the new one, never a mix, and the next run
+  must clean up whatever the killed one left.
+* Two runs of the same design with the same seeds write byte-identical files (with
+  ``SOURCE_DATE_EPOCH`` fixing the time stamp in ``run.json`` and the report; without it, only
+  that time stamp differs).
+* Injection strings in the formulas and contrasts of a design file are refused before anything
+  is evaluated: exit code 2, one line, and no file created anywhere in the working folder.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import signal
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from typer.testing import CliRunner
+
+from conftest import write_study
+from glmeeg.cli import app
+from glmeeg.results import load_run_result, recover_results
+
+TESTS = """\
+[[test]]
+name = "b-vs-a"
+subject_contrast = "condition[T.b]"
+correction = "cluster"
+permutations = 200
+seed = {seed}
+
+[[test]]
+name = "intensity"
+subject_contrast = "intensity"
+correction = "tfce"
+permutations = 200
+seed = {seed}
+"""
+
+# Runs the CLI in a child that SIGKILLs itself at a chosen moment of write_run.
+KILL_DURING_WRITE = """\
+import os, signal, sys
+import glmeeg.results as R
+moment = sys.argv[3]
+def die():
+    os.kill(os.getpid(), signal.SIGKILL)
+if moment == "writing":            # after the first test folder is written
+    original = R.TestResult.save
+    def save(self, folder):
+        original(self, folder)
+        die()
+    R.TestResult.save = save
+elif moment == "between-renames":  # the two-rename swap, killed between its renames
+    R._exchange = lambda a, b: False
+    original_replace = os.replace
+    def replace(src, dst):
+        original_replace(src, dst)
+        if str(dst).endswith(".old"):
+            die()
+    R.os.replace = replace
+elif moment == "after-swap":       # swapped in, the earlier results not yet removed
+    def rmtree(path, ignore_errors=False):
+        die()
+    R.shutil.rmtree = rmtree
+sys.argv = ["glmeeg", "run", sys.argv[1], "--out", sys.argv[2], "-q", "--no-report"]
+import glmeeg.cli as cli
+cli.main()
+"""
+
+
+def _study(root: Path, seed: int) -> Path:
+    return write_study(root, n_subjects=8, n_trials=15, n_channels=4, n_times=6, seed=3,
+                       effect=1.0, tests=TESTS.format(seed=seed))
+
+
+def _seeds(out: Path) -> set:
+    return {t.resampling.seed for t in load_run_result(out).tests}
+
+
+def _clean(folder: Path) -> list[str]:
+    return sorted(p.name for p in folder.iterdir())
+
+
+@pytest.mark.parametrize("moment", ["writing", "between-renames", "after-swap"])
+def test_a_run_killed_while_writing_leaves_a_complete_result(tmp_path, moment):
+    out = tmp_path / "out"
+    runner = CliRunner()
+    first = runner.invoke(app, ["run", str(_study(tmp_path / "s", seed=1)), "--out", str(out),
+                                "-q", "--no-report"])
+    assert first.exit_code == 0, first.output
+    assert _seeds(out) == {1}
+    design = _study(tmp_path / "s", seed=2)  # the same study, other seeds: another result
+    proc = subprocess.run([sys.executable, "-c", KILL_DURING_WRITE, str(design), str(out), moment],
+                          capture_output=True, text=True, timeout=300)
+    assert proc.returncode == -signal.SIGKILL, (proc.returncode, proc.stderr)
+    # The output folder loads as one whole run: the earlier one unless the swap was done.
+    expected = {2} if moment == "after-swap" else {1}
+    assert _seeds(out) == expected
+    run = load_run_result(out)
+    assert [t.name for t in run.tests] == ["b-vs-a", "intensity"]
+    # The next run cleans up what the killed one left beside the output folder.
+    again = runner.invoke(app, ["run", str(design), "--out", str(out), "-q", "--no-report"])
+    assert again.exit_code == 0, again.output
+    assert _seeds(out) == {2}
+    assert _clean(tmp_path) == ["out", "s"]
+
+
+def test_recovery_restores_the_earlier_results_when_the_output_is_missing(tmp_path):
+    """The repair alone: a dead writer's ``.NAME.PID.old`` goes back when NAME is missing."""
+    out = tmp_path / "out"
+    runner = CliRunner()
+    assert runner.invoke(app, ["run", str(_study(tmp_path / "s", seed=1)), "--out", str(out),
+                               "-q", "--no-report"]).exit_code == 0
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
+                          capture_output=True, text=True).stdout.strip()
+    os.replace(out, tmp_path / f".out.{dead}.old")
+    (tmp_path / f".out.{dead}.abc123_x.partial").mkdir()
+    assert _seeds(out) == {1}  # loading repairs
+    recover_results(out)
+    assert _clean(tmp_path) == ["out", "s"]
+
+
+def _digests(folder: Path) -> dict:
+    return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+def test_reruns_are_byte_identical(tmp_path, monkeypatch):
+    design = _study(tmp_path / "s", seed=5)
+    runner = CliRunner()
+    outs = []
+    for k, epoch in enumerate(["1700000000", "1700000000", None]):
+        if epoch is None:
+            monkeypatch.delenv("SOURCE_DATE_EPOCH", raising=False)
+        else:
+            monkeypatch.setenv("SOURCE_DATE_EPOCH", epoch)
+        out = tmp_path / f"out{k}"
+        r = runner.invoke(app, ["run", str(design), "--out", str(out), "-q"])
+        assert r.exit_code == 0, r.output
+        outs.append(_digests(out))
+    assert outs[0] == outs[1]
+    assert len(outs[0]) >= 9 and "report.html" in outs[0] and "b-vs-a/result.npz" in outs[0]
+    # Without SOURCE_DATE_EPOCH the time stamp is the clock's: run.json and the report differ
+    # from the fixed one only there.
+    differ = {k for k in outs[0] if outs[0][k] != outs[2][k]}
+    assert differ <= {"run.json", "report.html", "b-vs-a/result.npz", "intensity/result.npz"}
+    for name in ("b-vs-a", "intensity"):  # result.npz holds the provenance too
+        with np.load(tmp_path / "out0" / name / "result.npz") as f0, \
+                np.load(tmp_path / "out2" / name / "result.npz") as f2:
+            assert sorted(f0.files) == sorted(f2.files)
+            for key in f0.files:
+                if key == "meta":
+                    m0, m2 = json.loads(str(f0[key])), json.loads(str(f2[key]))
+                    assert m0["provenance"].pop("created") != m2["provenance"].pop("created") or True
+                    assert m0 == m2
+                else:
+                    assert f0[key].tobytes() == f2[key].tobytes(), key
+    a = json.loads((tmp_path / "out0" / "run.json").read_text())
+    b = json.loads((tmp_path / "out2" / "run.json").read_text())
+    assert a["provenance"]["created"] == "2023-11-14T22:13:20+00:00"  # 1.7e9 s after 1970-01-01 UTC
+    a["provenance"].pop("created"), b["provenance"].pop("created")
+    assert a == b
+
+
+def test_bad_source_date_epoch_is_one_line(tmp_path, monkeypatch):
+    monkeypatch.setenv("SOURCE_DATE_EPOCH", "yesterday")
+    r = CliRunner().invoke(app, ["run", str(_study(tmp_path / "s", seed=5)), "--out",
+                                 str(tmp_path / "out"), "-q"])
+    assert r.exit_code == 2 and "SOURCE_DATE_EPOCH" in r.output
+    assert not (tmp_path / "out").exists()
+
+
+FORMULA_INJECTIONS = [
+    "__import__('os').system('touch hacked')",
+    "condition + open('hacked', 'w').write('x')",
+    "condition + intensity.__class__",
+    "condition + exec('open(\\\"hacked\\\", \\\"w\\\")')",
+    "condition + eval('1')",
+    "condition + globals()",
+    "condition + getattr(intensity, 'real')",
+    "condition + [c for c in intensity]",
+    "condition + (lambda: open('hacked', 'w'))()",
+    "condition + Q('__builtins__')",
+    "condition + I(9 ** 9 ** 9 ** 9)",
+    "condition + I('a' * 999999999)",
+    "condition + I([0] * 999999999)",
+    "condition + C(condition, **{'levels': 1})",
+    "condition + intensity[0]",
+    "condition + __builtins__",
+    "condition + compile('1', 'f', 'eval')",
+    "condition + breakpoint()",
+]
+CONTRAST_INJECTIONS = [
+    "__import__('os').system('touch hacked')",
+    "open('hacked', 'w')",
+    "condition[T.b].__class__",
+    "intensity; import os",
+    "exec('1')",
+    "condition[T.b] - __builtins__",
+]
+
+
+def _toml_string(text: str) -> str:
+    return json.dumps(text)  # a JSON string is a valid TOML basic string
+
+
+@pytest.mark.parametrize("formula", FORMULA_INJECTIONS)
+def test_formula_injection_is_refused_and_creates_nothing(tmp_path, monkeypatch, formula):
+    root = tmp_path / "s"
+    design = write_study(root, n_subjects=4, n_trials=9, n_channels=2, n_times=3, seed=1)
+    text = design.read_text().replace('formula = "condition + intensity"',
+                                      f"formula = {_toml_string(formula)}")
+    design.write_text(text)
+    before = sorted(str(p) for p in tmp_path.rglob("*"))
+    monkeypatch.chdir(tmp_path)
+    r = CliRunner().invoke(app, ["run", str(design), "--out", str(tmp_path / "out")])
+    assert r.exit_code == 2, r.output
+    lines = [ln for ln in r.output.splitlines() if ln.strip()]
+    assert len(lines) == 1 and lines[0].startswith("error:") and "subject_model.formula" in lines[0]
+    assert sorted(str(p) for p in tmp_path.rglob("*")) == before
+    assert not (tmp_path / "hacked").exists() and not (root / "hacked").exists()
+
+
+@pytest.mark.parametrize("contrast", CONTRAST_INJECTIONS)
+def test_contrast_injection_is_refused_and_creates_nothing(tmp_path, monkeypatch, contrast):
+    root = tmp_path / "s"
+    tests = f'[[test]]\nname = "t"\nsubject_contrast = {_toml_string(contrast)}\n'
+    design = write_study(root, n_subjects=4, n_trials=9, n_channels=2, n_times=3, seed=1,
+                         tests=tests)
+    before = sorted(str(p) for p in tmp_path.rglob("*"))
+    monkeypatch.chdir(tmp_path)
+    r = CliRunner().invoke(app, ["run", str(design), "--out", str(tmp_path / "out")])
+    assert r.exit_code == 2, r.output
+    lines = [ln for ln in r.output.splitlines() if ln.strip()]
+    assert len(lines) == 1 and lines[0].startswith("error:") and "subject_contrast" in lines[0]
+    assert sorted(str(p) for p in tmp_path.rglob("*")) == before
+    assert not (tmp_path / "hacked").exists()
