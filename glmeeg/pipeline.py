@@ -154,6 +154,9 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
         included = tuple(np.asarray(study.subject_ids)[gm.kept])
         gc = contrast_matrix(gdesign, t.group_contrast, where=f"{where}: group_contrast")
         notes = []
+        if gm.condition_number > 1e8:
+            warnings.append(f"{where}: group design condition number {gm.condition_number:.3g}; "
+                            "estimates may be unstable (rescale or centre covariates such as age)")
         if gm.n_dropped:
             notes.append(f"{gm.n_dropped} subject(s) left out for missing values in {gformula}: "
                          f"{', '.join(np.asarray(study.subject_ids)[~gm.kept])}")

@@ -245,3 +245,25 @@ def test_contrast_injection_is_refused_and_creates_nothing(tmp_path, monkeypatch
     assert len(lines) == 1 and lines[0].startswith("error:") and "subject_contrast" in lines[0]
     assert sorted(str(p) for p in tmp_path.rglob("*")) == before
     assert not (tmp_path / "hacked").exists()
+
+
+def test_near_singular_group_design_is_reported_with_its_condition_number(tmp_path):
+    """A covariate in huge units next to the intercept: cond(G) = s_max / s_min of the group
+    design (numpy.linalg.cond, the definition) is above 1e8, and the plan says so."""
+    import numpy as np
+    import pandas as pd
+
+    from glmeeg.pipeline import plan_analysis
+
+    tests = ('[[test]]\nname = "age"\nsubject_contrast = "condition[T.b]"\n'
+             'group_formula = "age_ms"\ngroup_contrast = "age_ms"\n')
+    design = write_study(tmp_path / "s", n_subjects=6, n_trials=9, n_channels=2, n_times=3,
+                         seed=1, tests=tests)
+    subjects = pd.read_csv(tmp_path / "s" / "subjects.csv")
+    subjects["age_ms"] = subjects["age"] * 3.15576e10 + 1e12  # age in milliseconds, offset
+    subjects.to_csv(tmp_path / "s" / "subjects.csv", index=False)
+    plan = plan_analysis(design)
+    G = np.column_stack([np.ones(6), subjects["age_ms"].to_numpy(float)])
+    assert np.linalg.cond(G) > 1e8
+    [w] = [w for w in plan.warnings if "group design condition number" in w]
+    assert f"{np.linalg.cond(G):.3g}" in w and "test 'age'" in w
