@@ -5,20 +5,42 @@ channel x time (x frequency) point, exact p-values, effect sizes and corrections
 comparisons. Research software, not a clinical diagnostic device.
 """
 
-__version__ = "0.1.0"
+from ._version import __version__
 
-from .axes import Axes
-from .errors import ContrastError, DesignFileError, FormulaError, GlmeegError, ModelError, StudyError
-from .group_level import GroupStatistics, group_test
-from .inference import Bonferroni, FalseDiscoveryRate, Holm, NoCorrection, adjust_p
-from .power import PowerSolution, power_curve, solve_power
-from .pipeline import AnalysisPlan, fit_subjects, plan_analysis, run_analysis, test_group
-from .results import RunResult, TestResult, load_result, load_run, write_run
-from .spec import DesignSpec, load_design
-from .study import Study, read_study
-from .robust import RobustFit, fit_robust
-from .simulated_power import SimulatedPower, simulate_power
-from .subject_level import OLSFit, fit_ols
+# The public names, imported on first use (PEP 562): `glmeeg --help` and the command line's
+# start-up load only what the command needs, and an interrupt during start-up lands in the
+# command line's own handler rather than in an import.
+_PUBLIC = {
+    "Axes": "axes", "GlmeegError": "errors", "DesignFileError": "errors", "StudyError": "errors",
+    "FormulaError": "errors", "ContrastError": "errors", "ModelError": "errors",
+    "GroupStatistics": "group_level", "group_test": "group_level",
+    "Bonferroni": "inference", "FalseDiscoveryRate": "inference", "Holm": "inference",
+    "NoCorrection": "inference", "adjust_p": "inference",
+    "PowerSolution": "power", "power_curve": "power", "solve_power": "power",
+    "AnalysisPlan": "pipeline", "fit_subjects": "pipeline", "plan_analysis": "pipeline",
+    "run_analysis": "pipeline", "test_group": "pipeline",
+    "RunResult": "results", "TestResult": "results", "load_result": "results",
+    "load_run": "results", "write_run": "results",
+    "DesignSpec": "spec", "load_design": "spec", "Study": "study", "read_study": "study",
+    "RobustFit": "robust", "fit_robust": "robust", "SimulatedPower": "simulated_power",
+    "simulate_power": "simulated_power", "OLSFit": "subject_level", "fit_ols": "subject_level",
+}
+
+
+def __getattr__(name: str):
+    module = _PUBLIC.get(name)
+    if module is None:
+        raise AttributeError(f"module 'glmeeg' has no attribute {name!r}")
+    import importlib
+
+    value = getattr(importlib.import_module(f".{module}", __name__), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_PUBLIC))
+
 
 __all__ = ["__version__", "Axes", "GlmeegError", "DesignFileError", "StudyError", "FormulaError",
            "ContrastError", "ModelError", "DesignSpec", "load_design", "Study", "read_study",

@@ -53,7 +53,7 @@ def _reports_errors(fn):
 
 def _version(value: bool) -> None:
     if value:
-        from . import __version__
+        from ._version import __version__
 
         typer.echo(f"glmeeg {__version__}")
         raise typer.Exit()
@@ -114,7 +114,7 @@ def run(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
     from .results import check_output_folder, write_run
 
     limit = None if memory_limit is None else parse_size(memory_limit)
-    check_output_folder(out)  # before fitting: a wrong --out should cost nothing
+    out = check_output_folder(out)  # before fitting: a wrong --out should cost nothing
     plan = plan_analysis(design)
     made = [p for p in (Path(out), *Path(out).absolute().parents) if not p.exists()]
     try:
@@ -164,9 +164,12 @@ def neighbours(design: Annotated[Path, typer.Argument(help="Design file (TOML)."
                               "neighbour table (CSV: channel, neighbour) usable as [data] neighbours.")] = None) -> None:
     """Show which sensors count as neighbours for cluster and TFCE corrections."""
     from .neighbours import sensor_graph
+    from .ownership import check_replaceable
     from .spec import load_design
     from .study import read_neighbour_table, read_study
 
+    if out is not None:  # before any work: a file of the user's there is never replaced
+        check_replaceable(out, kind="table", label="--out (neighbour table)")
     spec = load_design(design)
     study = read_study(spec.data, root=design.parent)
     table = None
@@ -206,10 +209,11 @@ def demo(folder: Annotated[Path, typer.Argument(help="Folder for the demo study 
     from .results import write_run
     from .simulate import demo_verdict, write_demo_study
 
-    folder = Path(folder)
-    if folder.exists() and any(folder.iterdir()) and not (folder / "design.toml").is_file():
-        from .errors import GlmeegError
-        raise GlmeegError(f"{folder}: folder is not empty and holds no glmeeg demo; choose a new folder")
+    from .results import check_output_folder
+    from .simulate import check_demo_folder
+
+    folder = check_demo_folder(folder)
+    check_output_folder(folder / "results")
     if not quiet:
         typer.echo(f"writing the demo study ({subjects} volunteers) to {folder} ...", err=True)
     design = write_demo_study(folder, n_subjects=subjects, seed=seed)
@@ -240,11 +244,10 @@ def report(results: Annotated[Path, typer.Argument(help="A run's output folder."
                                                        "RESULTS/report.html).")] = None) -> None:
     """Write the self-contained HTML report of a finished run (figures need glmeeg[plots])."""
     from .report import render_report
-    from .results import load_run_result, write_text
+    from .results import load_run_result, write_report
 
     run = load_run_result(results)
-    path = write_text(render_report(run), out or Path(results) / "report.html",
-                      label="--out" if out else "report")
+    path = write_report(results, render_report(run), out=out)
     typer.echo(f"report written to {path}")
 
 
@@ -261,7 +264,7 @@ def schema(out: Annotated[Optional[Path], typer.Option("--out", "-o", help="Writ
     if out is None:
         typer.echo(text, nl=False)
         return
-    write_text(text, out, label="--out (schema)")
+    write_text(text, out, kind="schema", label="--out (schema)")
     typer.echo(f"schema written to {out}", err=True)
 
 
@@ -372,6 +375,10 @@ def power_command(
     from .errors import GlmeegError
     from .power import power_curve, solve_power
 
+    if plot is not None:
+        from .ownership import check_replaceable
+
+        check_replaceable(plot, kind="png", label="--plot")
     if from_result is not None:
         parametric = {"--design": design, "--effect-size": effect_size, "--power": target_power,
                       "--solve": solve, "--alternative": alternative, "--df-numerator": df_numerator,
@@ -494,6 +501,9 @@ def _simulated_power(from_result: Path, *, n: str | None, alpha, simulations, co
         graph = neighbours_from_table(result.axes.channels, table, label=str(neighbours))
     if csv is not None:
         # Checked before simulating: a wrong --csv should not cost minutes.
+        from .ownership import check_replaceable
+
+        check_replaceable(csv, kind="table", label="--csv")
         parent = csv.absolute().parent
         if csv.is_dir():
             raise GlmeegError(f"--csv: {csv} is a folder; expected a file name")

@@ -195,6 +195,8 @@ def render_report(run: RunResult, *, title: str | None = None) -> str:
             "<h2>Methods</h2>",
             '<pre class="methods">' + _esc(methods) + "</pre>"]
     body += [_test_section(t) for t in run.tests]
+    # The generator tag marks the page as glmeeg's, so a later `glmeeg report` may replace it.
     return ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+            f'<meta name="generator" content="glmeeg {_esc(run.provenance.glmeeg_version)}">'
             f"<title>{_esc(title)}</title><style>{_STYLE}</style></head><body>\n"
             + "\n".join(body) + "\n</body></html>\n")

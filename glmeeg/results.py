@@ -119,14 +119,22 @@ def _write_npz(fh, arrays: dict) -> None:
                 np.lib.format.write_array(f, np.asanyarray(value), allow_pickle=False)
 
 
-def _write_atomically(path: Path, write, *, label: str) -> Path:
+def _write_atomically(path: Path, write, *, label: str, kind: str) -> Path:
     """Call ``write(tmp)`` on a temporary file beside ``path``, then rename it into place.
+
+    ``kind`` says how an existing file is recognised as glmeeg's (``"html"``, ``"png"``,
+    ``"schema"``, ``"netcdf"``; ``"table"``: never): any other existing file is left alone
+    (:func:`glmeeg.ownership.check_replaceable`).
 
     Raises
     ------
     GlmeegError
-        ``path`` is a folder, its folder does not exist, or it cannot be written.
+        ``path`` is a folder, its folder does not exist, it cannot be written, or it is a file
+        that glmeeg did not write.
     """
+    from .ownership import check_replaceable
+
+    check_replaceable(path, kind=kind, label=label)
     if path.is_dir():
         raise GlmeegError(f"{label}: {path} is a folder; expected a file name")
     if not path.absolute().parent.is_dir():
@@ -158,7 +166,7 @@ def provenance(*, design_file: Path | None = None, inputs: dict[str, Path] | Non
     import patsy
     import scipy
 
-    from . import __version__
+    from ._version import __version__
 
     hashes = {}
     if design_file is not None:
@@ -558,7 +566,7 @@ class TestResult(_Frozen):
                     if ds[name].dtype.kind == "f"}
         return _write_atomically(Path(path), lambda tmp: ds.to_netcdf(tmp, engine="h5netcdf",
                                                                       encoding=encoding),
-                                 label=str(path))
+                                 label=str(path), kind="netcdf")
 
     def findings(self) -> dict:
         """A summary of the significant points: count, peak, channels and their time spans."""
@@ -687,9 +695,10 @@ class TestResult(_Frozen):
                   if getattr(self, k) is not None}
         with open(folder / "result.npz", "wb") as fh:
             _write_npz(fh, {"meta": np.array(json.dumps(meta)), **arrays})
-        self.to_frame().to_csv(folder / "points.csv", index=False, float_format="%.10g")
+        csv_safe(self.to_frame()).to_csv(folder / "points.csv", index=False, float_format="%.10g")
         if self.resampling is not None:
-            self.clusters_frame().to_csv(folder / "clusters.csv", index=False, float_format="%.10g")
+            csv_safe(self.clusters_frame()).to_csv(folder / "clusters.csv", index=False,
+                                                   float_format="%.10g")
         (folder / "summary.json").write_text(json.dumps(self.summary(), indent=2, default=_plain) + "\n")
 
 
@@ -773,28 +782,67 @@ def write_table(frame: pd.DataFrame, path: str | Path, *, label: str | None = No
         ``path`` is a folder or cannot be written; ``label`` (default: the path) names it.
     """
     path = Path(path)
-    return _write_atomically(path, lambda tmp: frame.to_csv(tmp, index=False, float_format="%.10g"),
-                             label=label or str(path))
+    return _write_atomically(path, lambda tmp: csv_safe(frame).to_csv(tmp, index=False, float_format="%.10g"),
+                             label=label or str(path), kind="table")
 
 
 def write_figure(fig, path: str | Path, *, label: str | None = None, dpi: int = 150) -> Path:
     """Save a matplotlib figure as PNG atomically (see :func:`write_text`)."""
     path = Path(path)
-    return _write_atomically(path, lambda tmp: fig.savefig(tmp, format="png", dpi=dpi),
-                             label=label or str(path))
+    return _write_atomically(path, lambda tmp: fig.savefig(tmp, format="png", dpi=dpi,
+                                                           metadata=png_metadata()),
+                             label=label or str(path), kind="png")
 
 
-def write_text(text: str, path: str | Path, *, label: str | None = None) -> Path:
+def write_text(text: str, path: str | Path, *, kind: str, label: str | None = None) -> Path:
     """Write text (UTF-8) atomically: a temporary file beside ``path``, then a rename.
+
+    ``kind`` (``"html"`` for a report, ``"schema"`` for the JSON Schema) says how an existing
+    file at ``path`` is recognised as glmeeg's; any other existing file is refused.
 
     Raises
     ------
     GlmeegError
-        ``path`` is a folder or cannot be written; ``label`` (default: the path) names it.
+        ``path`` is a folder, cannot be written or is a file glmeeg did not write; ``label``
+        (default: the path) names it.
     """
     path = Path(path)
     return _write_atomically(path, lambda tmp: tmp.write_text(text, encoding="utf-8"),
-                             label=label or str(path))
+                             label=label or str(path), kind=kind)
+
+
+def png_metadata() -> dict:
+    """Text chunks of the PNG files glmeeg writes: ``Software`` marks them as glmeeg's, so a
+    later run may replace them (:mod:`glmeeg.ownership`)."""
+    from ._version import __version__
+
+    return {"Software": f"glmeeg {__version__}"}
+
+
+# Cells a spreadsheet would evaluate as a formula (OWASP, "CSV Injection").
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def csv_safe(frame: pd.DataFrame) -> pd.DataFrame:
+    """``frame`` with every text cell that starts like a spreadsheet formula (``=``, ``+``,
+    ``-``, ``@``, tab, carriage return) prefixed with ``'``, so that spreadsheet programs show
+    it as text instead of evaluating it. Numbers are untouched; glmeeg's table reader removes
+    the prefix again (:func:`glmeeg.study.read_table`).
+
+    References
+    ----------
+    OWASP Foundation, "CSV Injection" (owasp.org/www-community/attacks/CSV_Injection).
+    """
+    out = None
+    for col in frame.columns:
+        if frame[col].dtype != object and not pd.api.types.is_string_dtype(frame[col]):
+            continue
+        values = frame[col]
+        risky = values.map(lambda v: isinstance(v, str) and v.startswith(_FORMULA_START))
+        if risky.any():
+            out = frame.copy() if out is None else out
+            out[col] = values.where(~risky, "'" + values.astype(str))
+    return frame if out is None else out
 
 
 def read_netcdf(path: str | Path):
@@ -876,27 +924,47 @@ def load_netcdf(path: str | Path) -> TestResult:
         raise GlmeegError(f"{path}: not a valid glmeeg result ({where}: {err['msg']})") from None
 
 
+RUN_LIST = "glmeeg run"  # run.json's ``written_by``: what marks a result folder as glmeeg's
+
+
 def check_output_folder(out: str | Path) -> Path:
     """Refuse an output folder that :func:`write_run` must not replace; return it as a Path.
 
-    Called before any fitting, so a wrong ``--out`` costs nothing; :func:`write_run` checks again.
+    A folder may be replaced only when it is empty, holds only the subject-fit cache, or is an
+    earlier glmeeg result: its ``run.json`` is glmeeg's (result schema, provenance, the list of
+    the files the run wrote) and it holds nothing that is not on that list
+    (:mod:`glmeeg.ownership`). A symbolic link is resolved: the results go where it points, and
+    the link stays as it is. Called before any fitting, so a wrong ``--out`` costs nothing;
+    :func:`write_run` checks again just before it swaps the new results in.
 
     Raises
     ------
     GlmeegError
-        ``out`` exists and is not a folder, or is a non-empty folder without a glmeeg result.
+        ``out`` exists and is not a folder, is a dangling link, or holds files glmeeg did not
+        write (named in the message); or it cannot be created.
     """
+    from .cache import CACHE_FOLDER
+    from .ownership import describe, foreign_entries, read_file_list
+
     out = Path(out)
-    if out.exists() or out.is_symlink():
+    if out.is_symlink():
+        target = out.resolve()
+        if not target.exists():
+            raise GlmeegError(f"{out}: is a symbolic link to {target}, which does not exist; give "
+                              "a folder path")
+        out = target
+    if out.exists():
         if not out.is_dir():
             raise GlmeegError(f"{out}: exists and is not a folder; expected a new folder or an "
                               "earlier glmeeg result folder")
-        from .cache import CACHE_FOLDER
-
-        held = {p.name for p in out.iterdir()}
-        if held and "run.json" not in held and held != {CACHE_FOLDER}:
-            raise GlmeegError(f"{out}: folder is not empty and holds no glmeeg result; choose a new "
-                              "or empty output folder")
+        owned = read_file_list(out / "run.json", schema_version=SCHEMA_VERSION, kind=RUN_LIST)
+        foreign = foreign_entries(out, owned or set(), cache=CACHE_FOLDER)
+        if foreign:
+            why = ("its run.json was not written by this version of glmeeg"
+                   if owned is None and (out / "run.json").exists() else "glmeeg replaces only its own "
+                   "result folders")
+            raise GlmeegError(f"{out}: holds files glmeeg did not write ({describe(foreign)}); {why}: "
+                              "choose a new or empty output folder, or move those files away")
     parent = out.absolute().parent
     while not parent.exists() and parent != parent.parent:
         parent = parent.parent
@@ -1016,10 +1084,10 @@ def write_run(run: RunResult, out: str | Path, *, report: str | None = None) -> 
         ``out`` exists, is not empty and is not a glmeeg result folder.
     """
     from .cache import CACHE_FOLDER
+    from .ownership import relative_files
 
-    out = Path(out)
+    out = check_output_folder(out)  # resolves a link: the results go where it points
     recover_results(out)
-    out = check_output_folder(out)
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.{os.getpid()}.", suffix=".partial",
                                 dir=out.parent))
@@ -1029,10 +1097,11 @@ def write_run(run: RunResult, out: str | Path, *, report: str | None = None) -> 
     try:
         for t in run.tests:
             t.save(tmp / t.name)
-        (tmp / "run.json").write_text(json.dumps(run.run_summary(), indent=2, default=_plain) + "\n")
         if report is not None:
             (tmp / "report.html").write_text(report, encoding="utf-8")
+        _write_run_summary(run, tmp, relative_files(tmp) + ["run.json"])
         _fsync_tree(tmp)
+        check_output_folder(out)  # again: nothing of anyone else's may have arrived meanwhile
         if out.exists():
             if (out / CACHE_FOLDER).is_dir():  # the subject-fit cache stays with the results
                 os.replace(out / CACHE_FOLDER, tmp / CACHE_FOLDER)
@@ -1058,6 +1127,37 @@ def write_run(run: RunResult, out: str | Path, *, report: str | None = None) -> 
     if tmp is not None:
         shutil.rmtree(tmp, ignore_errors=True)  # the earlier results, swapped out
     return out
+
+
+def _write_run_summary(run: RunResult, folder: Path, files: list[str]) -> None:
+    """``run.json``: the run's summary, marked as glmeeg's, with the list of the run's files."""
+    doc = {**run.run_summary(), "written_by": RUN_LIST, "files": sorted(set(files))}
+    (folder / "run.json").write_text(json.dumps(doc, indent=2, default=_plain) + "\n")
+
+
+def write_report(folder: str | Path, html: str, *, out: str | Path | None = None) -> Path:
+    """Write a run's report: into its result folder (``report.html``, added to the folder's
+    file list) or, with ``out``, into that file. An existing file is replaced only when it is a
+    glmeeg report.
+
+    Raises
+    ------
+    GlmeegError
+        The target cannot be written or is a file glmeeg did not write.
+    """
+    from .ownership import read_file_list
+
+    if out is not None:
+        return write_text(html, out, kind="html", label="--out")
+    folder = Path(folder).resolve()
+    path = write_text(html, folder / "report.html", kind="html", label="report")
+    listed = read_file_list(folder / "run.json", schema_version=SCHEMA_VERSION, kind=RUN_LIST)
+    if listed is not None and "report.html" not in listed:
+        doc = json.loads((folder / "run.json").read_text(encoding="utf-8"))
+        doc["files"] = sorted(listed | {"report.html"})
+        write_text(json.dumps(doc, indent=2, default=_plain) + "\n", folder / "run.json",
+                   kind="run-summary", label="run.json")
+    return path
 
 
 def load_run_result(folder: str | Path) -> RunResult:

@@ -33,7 +33,42 @@ from scipy.signal import lfilter
 
 from .sensors import standard_position
 
-__all__ = ["DEMO_DESIGN", "DEMO_TRUTH", "DemoTruth", "PlantedEffect", "write_demo_study", "demo_verdict"]
+__all__ = ["DEMO_DESIGN", "DEMO_TRUTH", "DemoTruth", "PlantedEffect", "check_demo_folder",
+           "write_demo_study", "demo_verdict"]
+
+# demo.json lists the files a demo wrote (glmeeg.ownership); the results folder has its own list.
+DEMO_LIST = "glmeeg demo"
+_DEMO_LIST_VERSION = 1
+
+
+def check_demo_folder(directory: str | Path) -> Path:
+    """Refuse a demo folder holding files the demo did not write; return it (links resolved).
+
+    A demo may write into a new or empty folder, or into an earlier demo's folder whose files
+    are all listed in its ``demo.json`` (the ``results`` folder is checked by
+    :func:`glmeeg.results.check_output_folder`).
+
+    Raises
+    ------
+    GlmeegError
+        ``directory`` is not a folder, or holds files the demo did not write.
+    """
+    from .errors import GlmeegError
+    from .ownership import describe, foreign_entries, read_file_list
+
+    root = Path(directory)
+    if root.is_symlink():
+        root = root.resolve()
+    if root.exists() and not root.is_dir():
+        raise GlmeegError(f"{root}: exists and is not a folder; expected a folder for the demo")
+    if not root.exists():
+        return root
+    owned = read_file_list(root / "demo.json", schema_version=_DEMO_LIST_VERSION, kind=DEMO_LIST)
+    foreign = foreign_entries(root, owned or set(), delegated=("results",))
+    if foreign:
+        raise GlmeegError(f"{root}: holds files the demo did not write ({describe(foreign)}); "
+                          "choose a new or empty folder for the demo")
+    return root
 
 DEMO_DESIGN = """\
 # glmeeg demo: alarm urgency at a maritime training centre (invented data).
@@ -349,8 +384,9 @@ def write_demo_study(directory: str | Path, *, n_subjects: int = 28, n_trials: i
     Parameters
     ----------
     directory : str or Path
-        Folder to write into; created if missing. Files already there that the demo writes are
-        overwritten, other files are left alone.
+        Folder to write into; created if missing. It must be empty or an earlier demo's folder
+        (every file listed in its ``demo.json``, which the demo writes): nothing else is ever
+        overwritten.
     n_subjects : int, default 28
         Number of volunteers, named ``s01``, ``s02`` ...; half pilots, half trainees.
     n_trials : int, default 240
@@ -369,8 +405,8 @@ def write_demo_study(directory: str | Path, *, n_subjects: int = 28, n_trials: i
     ------
     ValueError
         ``n_subjects`` is not 2-99 or ``n_trials`` is less than 12.
-    NotADirectoryError
-        ``directory`` exists and is not a folder.
+    GlmeegError
+        ``directory`` exists and is not a folder, or holds files the demo did not write.
 
     Notes
     -----
@@ -395,9 +431,8 @@ def write_demo_study(directory: str | Path, *, n_subjects: int = 28, n_trials: i
         raise ValueError(f"n_subjects must be between 2 and 99, got {n_subjects}")
     if n_trials < 12:
         raise ValueError(f"n_trials must be at least 12, got {n_trials}")
-    root = Path(directory)
-    if root.exists() and not root.is_dir():
-        raise NotADirectoryError(f"{root}: exists and is not a folder")
+    root = check_demo_folder(directory)
+    earlier = _earlier_demo_files(root)
     (root / "epochs").mkdir(parents=True, exist_ok=True)
 
     pos = np.array([standard_position(c) for c in CHANNELS])
@@ -430,7 +465,26 @@ def write_demo_study(directory: str | Path, *, n_subjects: int = 28, n_trials: i
                   "z": pos[:, 2].round(6)}).to_csv(root / "channels.tsv", sep="\t", index=False)
     design = root / "design.toml"
     design.write_text(DEMO_DESIGN, encoding="utf-8", newline="\n")
+    written = ["trials.csv", "subjects.csv", "channels.tsv", "planted_artefacts.csv", "design.toml",
+               "demo.json"] + [f"epochs/{sid}.npy" for sid in ids]
+    _write_demo_list(root, sorted({f for f in earlier if (root / f).is_file()} | set(written)))
     return design
+
+
+def _earlier_demo_files(root: Path) -> set[str]:
+    from .ownership import read_file_list
+
+    return read_file_list(root / "demo.json", schema_version=_DEMO_LIST_VERSION, kind=DEMO_LIST) or set()
+
+
+def _write_demo_list(root: Path, files: list[str]) -> None:
+    import json
+
+    from ._version import __version__
+
+    doc = {"written_by": DEMO_LIST, "schema_version": _DEMO_LIST_VERSION,
+           "provenance": {"glmeeg_version": __version__}, "files": files}
+    (root / "demo.json").write_text(json.dumps(doc, indent=2) + "\n", encoding="utf-8")
 
 
 def _spans(result, channels: tuple[str, ...]) -> tuple[list[str], float, float, int]:

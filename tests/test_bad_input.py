@@ -420,7 +420,7 @@ def test_output_folder_with_other_files_is_refused_and_untouched(tmp_path):
     (out / "figures" / "f1.svg").write_bytes(b"<svg/>")
     before = {p.relative_to(out): p.read_bytes() for p in out.rglob("*") if p.is_file()}
     result = CliRunner().invoke(app, ["run", str(design), "--out", str(out)])
-    assert_clean_error(result, [str(out), "not empty", "no glmeeg result"])
+    assert_clean_error(result, [str(out), "files glmeeg did not write", "chapter1.txt", "figures/"])
     after = {p.relative_to(out): p.read_bytes() for p in out.rglob("*") if p.is_file()}
     assert after == before
     assert sorted(p.name for p in out.iterdir()) == ["chapter1.txt", "figures"]

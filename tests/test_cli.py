@@ -166,6 +166,11 @@ def test_rerun_replaces_the_earlier_result(design, tmp_path):
     (out / "b-vs-a" / "my-notes.txt").write_text("from the first run")
     text = design.read_text().replace('name = "b-vs-a"', 'name = "b-minus-a"')
     design.write_text(text)
+    # A file the user added is never removed with the earlier results: the run is refused.
+    refused = invoke("run", design, "--out", out, "-q")
+    assert refused.exit_code == 2 and "b-vs-a/my-notes.txt" in refused.stderr, refused.output
+    assert (out / "b-vs-a" / "my-notes.txt").read_text() == "from the first run"
+    (out / "b-vs-a" / "my-notes.txt").unlink()
     result = invoke("run", design, "--out", out, "-q")
     assert result.exit_code == 0, result.output
     assert sorted(p.name for p in out.iterdir()) == sorted(["run.json", "report.html", "b-minus-a", "condition",

@@ -112,9 +112,23 @@ def test_netcdf_keeps_nan_bits_and_replaces_atomically(runs, tmp_path):
     p[:3] = [np.nan, -np.nan, -0.0]
     nan_result = t.model_copy(update={"p": glmeeg.results._frozen_array(p)})
     path = tmp_path / "t.nc"
-    path.write_text("an older file")
+    t.to_netcdf(path)  # an earlier export of glmeeg's is replaced
     nan_result.to_netcdf(path)
     assert same_bits(read_netcdf(path)["p"].values, nan_result.map("p"))
+    assert [f.name for f in tmp_path.iterdir()] == ["t.nc"]  # no temporary file left
+
+
+def test_netcdf_never_replaces_a_file_glmeeg_did_not_write(runs, tmp_path):
+    t = runs["ct"][0].test("condition")
+    mine = tmp_path / "mine.nc"
+    mine.write_text("someone's own file")
+    xr.Dataset({"x": ("a", [1.0])}).to_netcdf(tmp_path / "other.nc", engine="h5netcdf")
+    before = (tmp_path / "other.nc").read_bytes()
+    for path in (mine, tmp_path / "other.nc"):
+        with pytest.raises(glmeeg.GlmeegError, match="exists and is a file glmeeg did not write"):
+            t.to_netcdf(path)
+    assert mine.read_text() == "someone's own file"
+    assert (tmp_path / "other.nc").read_bytes() == before
 
 
 def test_netcdf_errors_are_one_line(runs, tmp_path):

@@ -104,14 +104,26 @@ def test_subject_data_do_not_depend_on_number_of_subjects(small_study: Path, tmp
             (small_study / "epochs" / f"{sid}.npy").read_bytes()
 
 
-def test_existing_folder_is_reused_and_file_rejected(tmp_path: Path) -> None:
-    (tmp_path / "notes.txt").write_text("keep me")
-    (tmp_path / "trials.csv").write_text("old")
-    write_demo_study(tmp_path, n_subjects=2, n_trials=12, seed=3)
-    assert (tmp_path / "notes.txt").read_text() == "keep me"
-    assert (tmp_path / "trials.csv").read_text().startswith("subject,")
+def test_demo_folder_of_someone_else_is_refused_and_an_earlier_demo_reused(tmp_path: Path) -> None:
+    from glmeeg.errors import GlmeegError
+
+    theirs = tmp_path / "theirs"
+    theirs.mkdir()
+    (theirs / "notes.txt").write_text("keep me")
+    (theirs / "trials.csv").write_text("their own trials")
+    with pytest.raises(GlmeegError, match="holds files the demo did not write"):
+        write_demo_study(theirs, n_subjects=2, n_trials=12, seed=3)
+    assert (theirs / "notes.txt").read_text() == "keep me"
+    assert (theirs / "trials.csv").read_text() == "their own trials"
+    assert sorted(p.name for p in theirs.iterdir()) == ["notes.txt", "trials.csv"]
+    demo = tmp_path / "demo"
+    write_demo_study(demo, n_subjects=3, n_trials=12, seed=3)
+    write_demo_study(demo, n_subjects=2, n_trials=12, seed=3)  # an earlier demo is the demo's own
+    assert (demo / "trials.csv").read_text().startswith("subject,")
+    assert (demo / "epochs" / "s03.npy").is_file()  # still listed, so a third demo may replace it
+    write_demo_study(demo, n_subjects=2, n_trials=12, seed=3)
     (tmp_path / "a-file").write_text("")
-    with pytest.raises(NotADirectoryError):
+    with pytest.raises(GlmeegError, match="not a folder"):
         write_demo_study(tmp_path / "a-file", n_subjects=2, n_trials=12, seed=3)
 
 
