@@ -19,6 +19,7 @@ their names must be design columns.
 from __future__ import annotations
 
 import ast
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -42,11 +43,99 @@ _ALLOWED_NODES = (ast.Expression, ast.Name, ast.Load, ast.Call, ast.Constant, as
                   ast.UnaryOp, ast.keyword, ast.List, ast.Tuple, ast.operator, ast.unaryop)
 
 
+# Bounds on what a formula may cost before patsy expands it (documented in the README).
+MAX_FORMULA_LENGTH = 4000     # characters
+MAX_FORMULA_DEPTH = 200       # nested operations (patsy's evaluation is recursive)
+MAX_TERMS = 500               # terms after expanding *, : and ** (e.g. a*b*c gives 7)
+MAX_DESIGN_COLUMNS = 1000     # design columns (factor levels and spline bases included)
+_MAX_LIST = 1000              # elements of a list argument (levels=[...], knots=[...])
+_MAX_SPLINE_DEGREE = 5        # bs(): the degrees scipy's spline evaluation supports
+_CODINGS = ("Treatment", "Sum", "Poly", "Helmert", "Diff")
+_BIG = 10**9
+
+
+def _short(formula: str) -> str:
+    return repr(formula if len(formula) <= 60 else formula[:57] + "...")
+
+
+def _expanded_terms(formula: str, *, where: str) -> int:
+    """An upper bound of the number of terms of ``formula``, from its parse tree alone.
+
+    patsy expands ``(a + b + ...)**k`` and ``a*b*...`` into every interaction before anything
+    can be checked, which for 22 variables means millions of terms; this count is taken first
+    (iteratively: the tree may be deep), so such formulas are refused at no cost.
+
+    Raises
+    ------
+    FormulaError
+        The formula is too long, too deeply nested or expands to more than
+        :data:`MAX_TERMS` terms.
+    """
+    from patsy.parse_formula import parse_formula
+
+    if len(formula) > MAX_FORMULA_LENGTH:
+        raise FormulaError(f"{where}: the formula has {len(formula)} characters; formulas may have "
+                           f"at most {MAX_FORMULA_LENGTH}")
+    try:
+        tree = parse_formula(formula)
+    except patsy.PatsyError as e:
+        raise FormulaError(f"{where}: cannot parse formula {_short(formula)}: {str(e).splitlines()[0]}") from None
+    except RecursionError:
+        raise FormulaError(f"{where}: formula {_short(formula)} is nested too deeply") from None
+    counts: dict[int, int] = {}
+    stack = [(tree, 1, False)]
+    while stack:
+        node, depth, visited = stack.pop()
+        if depth > MAX_FORMULA_DEPTH:
+            raise FormulaError(f"{where}: formula {_short(formula)} nests more than {MAX_FORMULA_DEPTH} "
+                               "operations; write it with fewer terms")
+        if not visited:
+            stack.append((node, depth, True))
+            stack.extend((a, depth + 1, False) for a in node.args)
+            continue
+        n = [counts.pop(id(a)) for a in node.args]
+        kind = node.type
+        if kind == "PYTHON_EXPR":
+            value = 1
+        elif kind in ("ZERO", "ONE", "NUMBER"):
+            value = 0
+        elif kind == "~":
+            value = n[-1]
+        elif len(n) == 1:  # unary + keeps, unary - removes
+            value = n[0] if kind == "+" else 0
+        elif kind == "+":
+            value = n[0] + n[1]
+        elif kind == "-":
+            value = n[0]
+        elif kind == ":":
+            value = n[0] * n[1]
+        elif kind in ("*", "/", "%in%"):
+            value = n[0] + n[1] + n[0] * n[1]
+        elif kind == "**":
+            try:
+                k = int(node.args[1].token.extra)
+            except (AttributeError, TypeError, ValueError):
+                k = _BIG
+            value = sum(math.comb(n[0], j) for j in range(1, min(k, n[0]) + 1)) if n[0] < 64 else _BIG
+        else:
+            value = _BIG
+        counts[id(node)] = min(value, _BIG)
+    total = counts[id(tree)]
+    if total > MAX_TERMS:
+        shown = f"{total}" if total < _BIG else "more than a billion"
+        raise FormulaError(f"{where}: formula {_short(formula)} expands to {shown} terms; formulas may "
+                           f"have at most {MAX_TERMS} (check * and ** over many variables)")
+    return total
+
+
 def _factor_codes(formula: str, *, where: str) -> list[str]:
+    _expanded_terms(formula, where=where)
     try:
         desc = patsy.ModelDesc.from_formula(formula)
     except patsy.PatsyError as e:
-        raise FormulaError(f"{where}: cannot parse formula {formula!r}: {str(e).splitlines()[0]}") from None
+        raise FormulaError(f"{where}: cannot parse formula {_short(formula)}: {str(e).splitlines()[0]}") from None
+    except RecursionError:
+        raise FormulaError(f"{where}: formula {_short(formula)} is nested too deeply") from None
     if desc.lhs_termlist:
         raise FormulaError(f"{where}: formula {formula!r} has a left-hand side; give only the "
                            "right-hand side (the EEG data are the response)")
@@ -72,6 +161,8 @@ def _check_values(tree: ast.AST, code: str, *, where: str) -> None:
             if any(k.arg is None for k in node.keywords):
                 _refuse(where, code, "passes ** keyword arguments, which formulas may not contain")
             args.update(id(k.value) for k in node.keywords)
+            if isinstance(node.func, ast.Name):
+                _check_call(node, code, where=where)
     for node in ast.walk(tree):
         if isinstance(node, ast.Constant):
             v = node.value
@@ -94,6 +185,43 @@ def _check_values(tree: ast.AST, code: str, *, where: str) -> None:
             if not any(isinstance(n, ast.Name) and n.id not in FORMULA_FUNCTIONS
                        for n in ast.walk(node.left)):
                 _refuse(where, code, "raises a number to a power; only columns may be raised")
+
+
+def _int_argument(node, code: str, name: str, upper: int, *, where: str) -> None:
+    if isinstance(node, ast.Constant) and node.value is None:
+        return
+    if not (isinstance(node, ast.Constant) and isinstance(node.value, int)
+            and not isinstance(node.value, bool) and 0 <= node.value <= upper):
+        _refuse(where, code, f"gives {name} that is not a whole number from 0 to {upper}")
+
+
+def _check_call(node: ast.Call, code: str, *, where: str) -> None:
+    """Arguments of the allowed functions that would write memory, read it uninitialised or
+    cost more than the design could use."""
+    fn = node.func.id
+    if fn in _NUMERIC:
+        # numpy's out= and where= (also as positional arguments) write in place or leave
+        # values uninitialised: one column, nothing else.
+        if len(node.args) != 1 or node.keywords:
+            _refuse(where, code, f"calls {fn} with more than one argument; write {fn}(column)")
+    elif fn == "C" and len(node.args) >= 2:
+        coding = node.args[1]
+        if isinstance(coding, ast.Call):
+            coding = coding.func
+        if not (isinstance(coding, ast.Name) and coding.id in _CODINGS):
+            _refuse(where, code, f"gives C() a coding that is not one of {', '.join(_CODINGS)} "
+                    "(e.g. C(x, Sum))")
+    elif fn == "bs":
+        named = {k.arg: k.value for k in node.keywords}
+        if len(node.args) >= 2:
+            named.setdefault("df", node.args[1])
+        if "df" in named:
+            _int_argument(named["df"], code, "bs() degrees of freedom", MAX_DESIGN_COLUMNS, where=where)
+        if "degree" in named:
+            _int_argument(named["degree"], code, "bs() a degree", _MAX_SPLINE_DEGREE, where=where)
+    for a in list(node.args) + [k.value for k in node.keywords]:
+        if isinstance(a, (ast.List, ast.Tuple)) and len(a.elts) > _MAX_LIST:
+            _refuse(where, code, f"passes a list of {len(a.elts)} values; at most {_MAX_LIST} are allowed")
 
 
 def _quoted_column(node: ast.Call, code: str, columns: set, *, where: str, source: str) -> str:
@@ -125,7 +253,9 @@ def formula_variables(formula: str, columns, *, where: str, source: str) -> tupl
         try:
             tree = ast.parse(code, mode="eval")
         except SyntaxError:
-            raise FormulaError(f"{where}: term {code!r} is not a valid expression") from None
+            raise FormulaError(f"{where}: term {_short(code)} is not a valid expression") from None
+        except (RecursionError, MemoryError):
+            raise FormulaError(f"{where}: term {_short(code)} is nested too deeply") from None
         # Refused syntax first, so 'np.log(x)' is reported as attribute access, not as a call.
         for node in ast.walk(tree):
             if not isinstance(node, _ALLOWED_NODES):
@@ -277,19 +407,36 @@ def build_design(table: pd.DataFrame, formula: str, *, levels: dict[str, list[st
         if v not in table.columns:
             raise FormulaError(f"{where.rsplit('.', 1)[0]}.levels: {v!r} is not a column of {source}")
     data, factors = _prepare(table, variables, levels, source=source)
+    present = data.notna().all(axis=1) if variables else pd.Series(True, index=data.index)
     try:
         # log/sqrt of non-positive values give NaN; reported below as an error, not as a warning.
         with np.errstate(all="ignore"):
-            frame = patsy.dmatrix(formula, data, eval_env=_env(), NA_action="drop", return_type="dataframe")
+            # What patsy.dmatrix does, in its two steps, so that the columns are counted before
+            # the matrix is built: many levels or a large spline basis cost nothing to refuse.
+            desc = patsy.ModelDesc.from_formula(formula)
+            (info,) = patsy.design_matrix_builders([desc.rhs_termlist], lambda: iter([data]),
+                                                   _env(), NA_action="drop")
+            n_columns, n_rows = len(info.column_names), int(present.sum())
+            if n_columns > MAX_DESIGN_COLUMNS:
+                raise FormulaError(f"{where}: formula {_short(formula)} gives {n_columns} design "
+                                   f"columns; designs may have at most {MAX_DESIGN_COLUMNS}")
+            if n_columns > n_rows:
+                raise FormulaError(f"{where}: formula {_short(formula)} gives {n_columns} design "
+                                   f"columns for {n_rows} usable rows of {source}")
+            (frame,) = patsy.build_design_matrices([info], data, NA_action="drop",
+                                                   return_type="dataframe")
     except patsy.PatsyError as e:
         raise FormulaError(f"{where}: {str(e).splitlines()[0]}") from None
-    except (ValueError, TypeError, ArithmeticError, IndexError) as e:
+    except RecursionError:
+        raise FormulaError(f"{where}: formula {_short(formula)} is nested too deeply") from None
+    except (ValueError, TypeError, ArithmeticError, IndexError, AttributeError) as e:
+        if isinstance(e, FormulaError):
+            raise
         # Raised by the transforms on unusable data (e.g. a coding of too few levels).
-        raise FormulaError(f"{where}: formula {formula!r} cannot be evaluated on {source} "
+        raise FormulaError(f"{where}: formula {_short(formula)} cannot be evaluated on {source} "
                            f"({type(e).__name__}: {(str(e).splitlines() or [''])[0]})") from None
     if frame.shape[1] == 0:
         raise FormulaError(f"{where}: formula {formula!r} gives no design columns")
-    present = data.notna().all(axis=1) if variables else pd.Series(True, index=data.index)
     lost = present & ~data.index.isin(frame.index)
     if lost.any():
         first = lost.index[np.flatnonzero(lost.to_numpy())[0]]
@@ -405,8 +552,13 @@ def contrast_matrix(design: Design, spec, *, where: str) -> ContrastMatrix:
             if not item.strip():
                 raise ContrastError(f"{where}: an empty contrast; give a column name, e.g. "
                                     f"{names[-1]!r}")
+            if len(item) > MAX_FORMULA_LENGTH:
+                raise ContrastError(f"{where}: the contrast has {len(item)} characters; contrasts "
+                                    f"may have at most {MAX_FORMULA_LENGTH}")
             try:
                 lc = design._info.linear_constraint(item)
+            except RecursionError:
+                raise ContrastError(f"{where}: contrast {_short(item)} is nested too deeply") from None
             except (patsy.PatsyError, ValueError, IndexError, TypeError, KeyError) as e:
                 raise ContrastError(f"{where}: {item!r} does not name design columns "
                                     f"(columns: {', '.join(names)}); {str(e).splitlines()[0]}") from None

@@ -23,6 +23,7 @@ from .errors import ModelError
 from .subject_level import fit_ols
 
 __all__ = ["GroupStatistics", "group_arrays", "group_test", "group_test_in_chunks", "p_values",
+           "unusable_variance",
            "hedges_factor"]
 
 Alternative = Literal["two-sided", "greater", "less"]
@@ -98,6 +99,28 @@ def p_values(statistic: np.ndarray, kind: str, df: tuple[float, float], *,
         if alternative == "greater":
             return t.sf(statistic, df[1])
         return t.cdf(statistic, df[1])
+
+
+def unusable_variance(rss: np.ndarray, total: np.ndarray, n: int) -> np.ndarray:
+    """Points whose residual sum of squares cannot carry a statistic.
+
+    ``rss`` is not finite, is zero or has underflowed (not above the smallest normal float64),
+    or is within the rounding error of a sum of ``n`` squares of the data themselves:
+    ``rss <= n ε total`` with ``total`` the (uncentred) sum of squares of the estimates at the
+    point and ε the float64 machine epsilon. There the variance holds no digit of the data,
+    and a t or F from it is a number, not a result (data scaled by 1e-170, or estimates equal
+    to rounding): such points get a non-finite statistic and are left out of every correction,
+    like points of zero variance.
+
+    References
+    ----------
+    .. [1] Higham, N. J. (2002). Accuracy and Stability of Numerical Algorithms (2nd ed.),
+       section 4.2 (the error bound of recursive summation). SIAM.
+    """
+    fi = np.finfo(np.float64)
+    with np.errstate(invalid="ignore", over="ignore"):
+        usable = np.isfinite(rss) & (rss > fi.tiny) & (rss > n * fi.eps * np.asarray(total))
+    return ~usable
 
 
 def group_arrays(estimates, design, contrast) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -205,11 +228,15 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
     fit = fit_ols(G, Y.reshape(n, k * P))
     B = fit.betas.reshape(q, k, P)
     V = fit.xtx_inv
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", under="ignore", over="ignore"):
+        if k == 1:
+            # A variance with no digit of the data gives no statistic (unusable_variance).
+            bad = unusable_variance(fit.residual_variance * dfe, np.einsum("np,np->p", Y[:, 0], Y[:, 0]), n)
+            s2_usable = np.where(bad, np.nan, fit.residual_variance)
         if k == 1 and m == 1:
             c = L[0]
             est = (c @ B[:, 0, :])[None, :]
-            s2 = fit.residual_variance
+            s2 = s2_usable
             se = np.sqrt(s2 * (c @ V @ c))
             stat = est[0] / se
             df = (1.0, float(dfe))
@@ -223,7 +250,7 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
         else:
             if k == 1:
                 est = L @ B[:, 0, :]                              # (m, P)
-                s2 = fit.residual_variance
+                s2 = s2_usable
                 Minv = np.linalg.inv(L @ V @ L.T)
                 stat = np.einsum("ip,ij,jp->p", est, Minv, est) / (m * s2)
                 df = (float(m), float(dfe))
@@ -236,7 +263,9 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
                 E = Y - np.einsum("nq,qkp->nkp", G, B)
                 S = np.einsum("nkp,nlp->pkl", E, E) / dfe
                 a = est.T[:, :, None]
-                finite = np.isfinite(S).all(axis=(1, 2)) & (np.linalg.det(S) > 0)
+                diag = np.einsum("pkk->kp", S) * dfe
+                bad = unusable_variance(diag, np.einsum("nkp,nkp->kp", Y, Y), n).any(axis=0)
+                finite = np.isfinite(S).all(axis=(1, 2)) & (np.linalg.det(S) > 0) & ~bad
                 sol = np.full_like(a, np.nan)
                 sol[finite] = np.linalg.solve(S[finite], a[finite])
                 t2 = np.einsum("pk,pk->p", est.T, sol[:, :, 0]) / (c @ V @ c)

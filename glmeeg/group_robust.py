@@ -26,7 +26,7 @@ import numpy as np
 import scipy.stats
 
 from .errors import ModelError
-from .group_level import GroupStatistics, p_values
+from .group_level import GroupStatistics, p_values, unusable_variance
 
 __all__ = ["GROUP_METHODS", "group_layout", "trimmed_test", "welch_test", "winsorized_normal_sd"]
 
@@ -97,8 +97,14 @@ def _trimmed_parts(y: np.ndarray, trim: float):
     return mean_t, var_w, n, g
 
 
-def _finish(estimate, se, df, d, d_name, *, alternative) -> GroupStatistics:
-    with np.errstate(divide="ignore", invalid="ignore"):
+def _finish(estimate, se, df, d, d_name, *, alternative, data) -> GroupStatistics:
+    n = data.shape[0]
+    with np.errstate(divide="ignore", invalid="ignore", under="ignore", over="ignore"):
+        # The variance of the estimate, on the scale of a sum of squares of the data: a
+        # variance with no digit of the data gives no statistic (group_level.unusable_variance).
+        bad = unusable_variance(se * se * n * (n - 1), np.einsum("np,np->p", data, data), n)
+        se = np.where(bad, np.nan, se)
+        d = np.where(bad, np.nan, d)
         stat = estimate / se
     df_arr = np.asarray(df, dtype=np.float64)
     if df_arr.ndim == 0:
@@ -167,7 +173,8 @@ def trimmed_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray
                 raise ModelError(f"trimming {trim:g} of {n} subjects leaves fewer than 2")
             se = np.sqrt(v) / ((1 - 2 * g / n) * np.sqrt(n))
             d = k * sign * m / np.sqrt(v)
-            return _finish(sign * m, se, n - 2 * g - 1, d, "robust dz (trimmed)", alternative=alternative)
+            return _finish(sign * m, se, n - 2 * g - 1, d, "robust dz (trimmed)", alternative=alternative,
+                           data=Y)
         parts = [_trimmed_parts(Y[sel], trim) for sel in (groups, ~groups)]
         ds, hs = [], []
         for m, v, n, g in parts:
@@ -182,7 +189,7 @@ def trimmed_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray
         n1, n2 = parts[0][2], parts[1][2]
         pooled = np.sqrt(((n1 - 1) * parts[0][1] + (n2 - 1) * parts[1][1]) / (n1 + n2 - 2))
         d = k * est / pooled
-    return _finish(est, se, df, d, "robust d (trimmed)", alternative=alternative)
+    return _finish(est, se, df, d, "robust d (trimmed)", alternative=alternative, data=Y)
 
 
 def welch_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, *,
@@ -205,4 +212,4 @@ def welch_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
         se = np.sqrt(q1 + q2)
         df = (q1 + q2) ** 2 / (q1 ** 2 / (n1 - 1) + q2 ** 2 / (n2 - 1))
         d = est / np.sqrt(((n1 - 1) * v1 + (n2 - 1) * v2) / (n1 + n2 - 2))
-    return _finish(est, se, df, d, "d (pooled SD)", alternative=alternative)
+    return _finish(est, se, df, d, "d (pooled SD)", alternative=alternative, data=Y)

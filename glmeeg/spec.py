@@ -37,11 +37,69 @@ _TFCE_KEYS = ("tfce_extent_exponent", "tfce_height_exponent")
 # of several of these is a joint (F) contrast.
 Contrast = Union[str, list[float], list[Union[str, list[float]]]]
 
-_SAFE_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$")
+_SAFE_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,99}")
+# Names a result folder holds besides the tests' folders (any letter case: file systems that
+# ignore case would confuse them).
+RESERVED_NAMES = ("run.json", "report.html", "subject-fits")
+
+# Bounds on a design file, checked on its text before the TOML parser runs (a parser's cost can
+# grow with the square of a dotted key's length, and its recursion with nesting). Documented.
+MAX_DESIGN_BYTES = 2**20
+MAX_NESTING = 16
+MAX_KEY_PARTS = 32
+MAX_ARRAY_LENGTH = 10_000
+MAX_LEVELS = 1000
+MAX_TESTS = 1000
+
+_TOML_TOKEN = re.compile("|".join([
+    r'(?P<mlbasic>"""(?:[^"\\]|\\.|"(?!""))*"{3,5})',     # multi-line basic string
+    r"(?P<mlliteral>'{3}[\s\S]*?'{3,5})",                   # multi-line literal string
+    r'(?P<basic>"(?:[^"\\\n]|\\.)*")',                       # basic string
+    r"(?P<literal>'[^'\n]*')",                               # literal string
+    r"(?P<comment>#[^\n]*)",
+    r"(?P<word>[A-Za-z0-9_+:-]+)",                           # bare key, number, date, boolean
+    r"(?P<space>[ \t\r\n]+)",
+    r"(?P<other>.)",
+]), re.DOTALL)
+
+
+def _check_toml_cost(text: str, source: str) -> None:
+    """Refuse a design file whose parsing alone would be costly: nesting deeper than
+    :data:`MAX_NESTING`, a dotted key of more than :data:`MAX_KEY_PARTS` parts, an array or
+    inline table of more than :data:`MAX_ARRAY_LENGTH` elements. One linear pass over the
+    text; strings and comments are skipped whole, so their content counts for nothing."""
+    stack: list[int] = []  # elements seen so far in each open array / inline table
+    chain, after_dot = 0, False
+    for m in _TOML_TOKEN.finditer(text):
+        kind, tok = m.lastgroup, m.group()
+        if kind in ("space", "comment"):
+            continue
+        if kind in ("word", "basic", "literal", "mlbasic", "mlliteral"):
+            chain = chain + 1 if after_dot else 1
+            after_dot = False
+            if chain > MAX_KEY_PARTS:
+                raise DesignFileError(f"{source}: a dotted key has more than {MAX_KEY_PARTS} parts")
+            continue
+        after_dot = tok == "."
+        if not after_dot:
+            chain = 0
+        if tok in "[{":
+            stack.append(0)
+            if len(stack) > MAX_NESTING:
+                raise DesignFileError(f"{source}: arrays or tables are nested more than {MAX_NESTING} deep")
+        elif tok in "]}" and stack:
+            stack.pop()
+        elif tok == "," and stack:
+            stack[-1] += 1
+            if stack[-1] >= MAX_ARRAY_LENGTH:
+                raise DesignFileError(f"{source}: an array or inline table has more than "
+                                      f"{MAX_ARRAY_LENGTH} elements")
 
 
 class _Strict(BaseModel):
-    model_config = ConfigDict(frozen=True, extra="forbid")
+    # strict: a value of the wrong type ("200" for a number, 1 for a text) is an error, never
+    # converted.
+    model_config = ConfigDict(frozen=True, extra="forbid", strict=True)
 
 
 class DataSpec(_Strict):
@@ -84,13 +142,15 @@ class DataSpec(_Strict):
 
 class _ModelSpec(_Strict):
     formula: str
-    levels: dict[str, list[str]] = Field(default_factory=dict,
+    levels: dict[str, list[str]] = Field(default_factory=dict, max_length=MAX_LEVELS,
                                          description="level order per factor; the first is the reference")
 
     @field_validator("levels")
     @classmethod
     def _levels_ok(cls, v: dict[str, list[str]]) -> dict[str, list[str]]:
         for k, lv in v.items():
+            if len(lv) > MAX_LEVELS:
+                raise ValueError(f"factor '{k}' lists {len(lv)} levels; at most {MAX_LEVELS} are allowed")
             if len(lv) < 2:
                 raise ValueError(f"factor '{k}' needs at least two levels, got {lv}")
             if len(set(lv)) != len(lv):
@@ -189,11 +249,14 @@ class TestSpec(_Strict):
     @field_validator("name")
     @classmethod
     def _safe_name(cls, v: str) -> str:
-        if not _SAFE_NAME.match(v) or v in (".", ".."):
+        # fullmatch: a final newline must not pass as the end of the name.
+        if not _SAFE_NAME.fullmatch(v) or v in (".", ".."):
             raise ValueError("must be 1-100 letters, digits, '.', '_' or '-', starting with a letter "
                              "or digit (it becomes a folder name)")
-        if v == "subject-fits":
-            raise ValueError("'subject-fits' is the folder of the cached subject fits; choose another name")
+        if v.lower() == "subject-fits":
+            raise ValueError(f"{v!r} is the folder of the cached subject fits; choose another name")
+        if v.lower() in RESERVED_NAMES:
+            raise ValueError(f"{v!r} is the name of a file of the result folder; choose another name")
         return v
 
     @field_validator("subject_contrast", "group_contrast")
@@ -212,7 +275,7 @@ class DesignSpec(_Strict):
     data: DataSpec
     subject_model: SubjectModelSpec
     group_model: GroupModelSpec = GroupModelSpec()
-    test: list[TestSpec] = Field(min_length=1, description="one or more [[test]] tables")
+    test: list[TestSpec] = Field(min_length=1, max_length=MAX_TESTS, description="one or more [[test]] tables")
 
     @field_validator("test")
     @classmethod
@@ -281,15 +344,25 @@ def load_design(path: str | Path) -> DesignSpec:
     """
     path = Path(path)
     try:
-        text = path.read_bytes().decode("utf-8")
+        with open(path, "rb") as fh:
+            raw = fh.read(MAX_DESIGN_BYTES + 1)
+        text = raw.decode("utf-8")
     except FileNotFoundError:
         raise DesignFileError(f"{path}: design file not found") from None
     except IsADirectoryError:
         raise DesignFileError(f"{path}: is a folder, expected a TOML design file") from None
     except UnicodeDecodeError as e:
         raise DesignFileError(f"{path}: not UTF-8 text (byte {e.start})") from None
+    except OSError as e:
+        raise DesignFileError(f"{path}: cannot be read ({e.strerror or e})") from None
+    if len(raw) > MAX_DESIGN_BYTES:
+        raise DesignFileError(f"{path}: larger than {MAX_DESIGN_BYTES // 2**10} KiB; a design file "
+                              "is a short text")
+    _check_toml_cost(text, str(path))
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
         raise DesignFileError(f"{path}: not valid TOML: {e}") from None
+    except RecursionError:
+        raise DesignFileError(f"{path}: arrays or tables are nested too deeply") from None
     return parse_design(data, source=str(path))

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import csv
 import re
+from collections import Counter
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -22,7 +23,12 @@ from .spec import DataSpec
 
 __all__ = ["Study", "read_epoch_file", "read_neighbour_table", "read_study", "read_table"]
 
-_SAFE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$")
+_SAFE_ID = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,99}")  # used with fullmatch
+
+# Bounds on a table, checked before pandas reads it (documented in the README).
+MAX_TABLE_BYTES = 2**30
+MAX_TABLE_COLUMNS = 5000
+MAX_HEADER_CHARS = 2**20
 
 
 def read_table(path: Path, *, sep: str, label: str, required: tuple[str, ...],
@@ -33,6 +39,10 @@ def read_table(path: Path, *, sep: str, label: str, required: tuple[str, ...],
         raise StudyError(f"{label}: is a folder ({path}); expected a {kind} table")
     if not path.is_file():
         raise StudyError(f"{label}: file not found ({path})")
+    size = path.stat().st_size
+    if size > MAX_TABLE_BYTES:
+        raise StudyError(f"{label}: {size / 2**20:.0f} MiB; tables of more than "
+                         f"{MAX_TABLE_BYTES // 2**20} MiB are not read")
     raw = path.read_bytes()
     try:
         text = raw.decode("utf-8-sig")
@@ -40,25 +50,54 @@ def read_table(path: Path, *, sep: str, label: str, required: tuple[str, ...],
         raise StudyError(f"{label}: not UTF-8 text (byte {e.start}); save the file as UTF-8") from None
     if not text.strip():
         raise StudyError(f"{label}: the file is empty; expected a {kind} table with a header row")
-    header = text.splitlines()[0]
+    end = text.find("\n", 0, MAX_HEADER_CHARS + 1)
+    if end < 0 and len(text) > MAX_HEADER_CHARS:
+        raise StudyError(f"{label}: the header row is longer than {MAX_HEADER_CHARS} characters")
+    header = text[:end] if end >= 0 else text
     for other, name in ((";", "semicolons"), ("\t", "tabs"), (",", "commas")):
         if other != sep and other in header and sep not in header:
             raise StudyError(f"{label}: the header is separated by {name}; expected a {kind} table")
+    # The width is bounded and repeated names are found on the header itself, before pandas
+    # reads the table (pandas renames repeats 'a', 'a.1', which would hide them).
+    try:
+        names = [c.strip() for c in next(csv.reader([header.rstrip("\r")], delimiter=sep))]
+    except (csv.Error, StopIteration) as e:
+        raise StudyError(f"{label}: the header row cannot be read ({e})") from None
+    if len(names) > MAX_TABLE_COLUMNS:
+        raise StudyError(f"{label}: {len(names)} columns; tables may have at most {MAX_TABLE_COLUMNS}")
+    counts = Counter(names)
+    dupes = sorted(c for c, k in counts.items() if k > 1)
+    if dupes:
+        raise StudyError(f"{label}: repeated column name(s) {', '.join(dupes[:10])}")
     try:
         table = pd.read_csv(path, sep=sep, dtype={c: str for c in text_columns},
                             keep_default_na=True, encoding="utf-8-sig", quoting=csv.QUOTE_MINIMAL)
     except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError) as e:
         raise StudyError(f"{label}: cannot be read as a {kind} table: {str(e).splitlines()[0]}") from None
     table.columns = [str(c).strip() for c in table.columns]
-    dupes = sorted({c for c in table.columns if list(table.columns).count(c) > 1})
-    if dupes:
-        raise StudyError(f"{label}: repeated column name(s) {', '.join(dupes)}")
+    if len(set(table.columns)) != len(table.columns):
+        raise StudyError(f"{label}: repeated column names")
+    table = _unprefix_text(table)
     missing = [c for c in required if c not in table.columns]
     if missing:
         raise StudyError(f"{label}: no column {', '.join(map(repr, missing))} "
                          f"(columns: {', '.join(table.columns)})")
     if table.shape[0] == 0:
         raise StudyError(f"{label}: has a header but no rows")
+    return table
+
+
+def _unprefix_text(table: pd.DataFrame) -> pd.DataFrame:
+    """Remove the ``'`` that glmeeg's CSV writer puts before text starting like a spreadsheet
+    formula (:func:`glmeeg.results.csv_safe`), so its tables read back as written."""
+    for col in table.columns:
+        if not (table[col].dtype == object or pd.api.types.is_string_dtype(table[col])):
+            continue
+        values = table[col]
+        marked = values.map(lambda v: isinstance(v, str) and len(v) > 1 and v[0] == "'"
+                            and v[1] in "=+-@\t\r")
+        if marked.any():
+            table[col] = values.where(~marked, values.map(lambda v: v[1:] if isinstance(v, str) else v))
     return table
 
 
@@ -213,7 +252,7 @@ def _subject_column(table: pd.DataFrame, label: str) -> pd.Series:
         row = int(np.flatnonzero(bad.to_numpy())[0]) + 2
         raise StudyError(f"{label} row {row}: empty subject id")
     s = s.astype(str).str.strip()
-    unsafe = [x for x in s.unique() if not _SAFE_ID.match(x)]
+    unsafe = [x for x in s.unique() if not _SAFE_ID.fullmatch(x)]
     if unsafe:
         raise StudyError(f"{label}: subject id {unsafe[0]!r} must be letters, digits, '.', '_' or '-' "
                          "(it becomes part of a file name)")

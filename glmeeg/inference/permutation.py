@@ -267,6 +267,41 @@ class _Engine:
             return scale * t2
 
 
+def _unusable_points(Y: np.ndarray, G: np.ndarray, L: np.ndarray, *, method: str, trim: float) -> np.ndarray:
+    """Points whose observed variance holds no digit of the data (the group test's own rule,
+    :func:`glmeeg.group_level.unusable_variance`): they get no statistic in any resampling."""
+    from ..group_level import unusable_variance
+    from ..subject_level import fit_ols
+
+    n, k, P = Y.shape
+    if method != "glm":
+        from ..group_robust import trimmed_test, welch_test
+
+        stat = (trimmed_test(Y[:, 0], G, L, trim=trim) if method == "trimmed"
+                else welch_test(Y[:, 0], G, L)).statistic
+        return ~np.isfinite(stat) & np.isfinite(Y[:, 0]).all(axis=0)
+    dfe = n - G.shape[1]
+    fit = fit_ols(G, Y.reshape(n, k * P))
+    with np.errstate(invalid="ignore", over="ignore", under="ignore"):
+        rss = (fit.residual_variance * dfe).reshape(k, P)
+        return unusable_variance(rss, np.einsum("nkp,nkp->kp", Y, Y), n).any(axis=0)
+
+
+class _WithoutPoints:
+    """An engine whose maps have no statistic (NaN) at the given points."""
+
+    def __init__(self, engine, points: np.ndarray):
+        self.engine = engine
+        self.points = np.asarray(points, dtype=bool)
+        self.scheme = engine.scheme
+        self.bytes_per_map = engine.bytes_per_map
+
+    def statistics(self, rows: np.ndarray) -> np.ndarray:
+        maps = self.engine.statistics(rows)
+        maps[:, self.points] = np.nan
+        return maps
+
+
 def _robust_engine(Y: np.ndarray, G: np.ndarray, L: np.ndarray, scheme: Scheme, *, kind: str,
                    method: str, trim: float):
     """The trimmed-t or Welch engine of a one-sample or two-group test (checked here)."""
@@ -462,6 +497,9 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
         engine = _Engine(Y, G, L, scheme)
     else:
         engine = _robust_engine(Y, G, L, scheme, kind=kind, method=method, trim=trim)
+    unusable = _unusable_points(Y, G, L, method=method, trim=trim)
+    if unusable.any():
+        engine = _WithoutPoints(engine, unusable)
     total = 2 ** n if scheme == "sign-flip" else math.factorial(n)
     exhaustive = total <= correction.permutations
     # Exhaustive resamplings are listed here; random ones are drawn by the tasks from their blocks.
