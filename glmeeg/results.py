@@ -669,7 +669,8 @@ class TestResult(_Frozen):
                 lines.append(f"    ... and {len(sig) - 20} more")
         if f["n_nonfinite"]:
             lines.append(f"  warning: the statistic is not finite at {f['n_nonfinite']} points "
-                         "(zero variance, a variance at rounding level or one that underflowed, or missing data); they are left out of the correction")
+                         "(zero variance, a variance at rounding level or underflowed, or missing "
+                         "data); they are left out of the correction")
         rc = self.residual_checks
         if rc is not None:
             share = ("not tested (fewer than 8 subjects)" if rc.share_rejected is None else
