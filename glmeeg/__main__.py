@@ -1,3 +1,3 @@
-from .cli import main
+from ._console import main
 
 main()

@@ -30,14 +30,33 @@ def _close_progress() -> None:
         _open_progress[0] = None
 
 
+def _warning_as_note(message, category, filename, lineno, file=None, line=None) -> None:
+    """A warning of numpy, pandas or another library, as one line of glmeeg's log."""
+    import logging
+
+    text = " ".join(str(message).split())
+    text = f"note: {text if len(text) <= 300 else text[:297] + '...'}"
+    logger = logging.getLogger("glmeeg")
+    if logger.handlers:  # the command's own log (it keeps progress bars intact)
+        logger.warning("%s", text)
+    else:
+        typer.echo(text, err=True)
+
+
 def _reports_errors(fn):
     @wraps(fn)
     def wrapper(*args, **kwargs):
+        import warnings
+
+        from ._console import INTERRUPTED
         from .errors import GlmeegError
 
         try:
             try:
-                return fn(*args, **kwargs)
+                with warnings.catch_warnings():
+                    # Never a raw warning with its source line on the terminal: one note line.
+                    warnings.showwarning = _warning_as_note
+                    return fn(*args, **kwargs)
             finally:
                 _close_progress()
         except GlmeegError as e:
@@ -46,7 +65,7 @@ def _reports_errors(fn):
             raise typer.Exit(2) from None
         except KeyboardInterrupt:
             _close_progress()
-            typer.echo("interrupted; no results were written", err=True)
+            typer.echo(INTERRUPTED, err=True)
             raise typer.Exit(130) from None
     return wrapper
 
@@ -548,8 +567,10 @@ def _simulation_progress():
     return show
 
 
-def main() -> None:  # console-script entry point
-    app()
+def main() -> None:  # the console script's entry point (glmeeg._console.main) calls app
+    from ._console import main as console_main
+
+    console_main()
 
 
 if __name__ == "__main__":  # pragma: no cover

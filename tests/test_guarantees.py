@@ -266,3 +266,76 @@ def test_near_singular_group_design_is_reported_with_its_condition_number(tmp_pa
     assert np.linalg.cond(G) > 1e8
     [w] = [w for w in plan.warnings if "group design condition number" in w]
     assert f"{np.linalg.cond(G):.3g}" in w and "test 'age'" in w
+
+
+# --- interrupts and warnings ------------------------------------------------------------------
+
+# Sends SIGINT to itself while the command line's libraries are being imported (typer), the
+# moment a Ctrl-C at start-up lands in; then runs the console script's entry point.
+INTERRUPT_AT_START_UP = """\
+import builtins, os, signal, sys
+real_import = builtins.__import__
+def importer(name, *args, **kwargs):
+    if name == "typer":
+        builtins.__import__ = real_import
+        os.kill(os.getpid(), signal.SIGINT)
+    return real_import(name, *args, **kwargs)
+builtins.__import__ = importer
+sys.argv = ["glmeeg", "--version"]
+from glmeeg._console import main
+main()
+"""
+
+
+def test_interrupt_during_start_up_is_one_line_and_exit_130(tmp_path):
+    proc = subprocess.run([sys.executable, "-c", INTERRUPT_AT_START_UP], capture_output=True,
+                          text=True, cwd=tmp_path)
+    assert proc.returncode == 130, proc.stderr
+    assert proc.stderr == "interrupted; no results were written\n"
+    assert proc.stdout == ""
+
+
+def test_library_warnings_become_one_line_notes(tmp_path, monkeypatch):
+    """A warning raised by a library inside a command is one 'note:' line, not the raw warning
+    with its file, line number and source line."""
+    import warnings
+
+    import glmeeg.pipeline as pipeline
+
+    design = write_study(tmp_path / "study", n_subjects=6, n_trials=12, n_channels=3, n_times=5)
+    original = pipeline.plan_analysis
+
+    def plan_with_warning(*args, **kwargs):
+        warnings.warn("invalid value encountered\n  in divide", RuntimeWarning)
+        return original(*args, **kwargs)
+
+    monkeypatch.setattr(pipeline, "plan_analysis", plan_with_warning)
+    result = CliRunner().invoke(app, ["check", str(design)])
+    assert result.exit_code == 0, result.output
+    notes = [line for line in result.stderr.splitlines() if "invalid value" in line]
+    assert notes == ["note: invalid value encountered in divide"], result.stderr
+    assert "RuntimeWarning" not in result.stderr and "warnings.warn" not in result.stderr
+
+
+def test_text_cells_that_spreadsheets_would_evaluate_are_written_as_text(tmp_path):
+    """OWASP "CSV Injection": cells starting with =, +, -, @ are prefixed with ' in every CSV
+    glmeeg writes, and glmeeg's own reader takes the prefix off again."""
+    import pandas as pd
+
+    from glmeeg.study import read_table
+
+    root = tmp_path / "study"
+    design = write_study(root, n_subjects=6, n_trials=12, n_channels=3, n_times=5)
+    names = ["=HYPERLINK(\"http://x\")", "+Cz", "@Pz"]
+    pd.DataFrame({"name": names}).to_csv(root / "channels.tsv", sep="\t", index=False)
+    out = tmp_path / "out"
+    result = CliRunner().invoke(app, ["run", str(design), "--out", str(out), "-q", "--no-report"])
+    assert result.exit_code == 0, result.output
+    import csv
+
+    with open(out / "b-vs-a" / "points.csv", newline="") as fh:
+        cells = {row[0] for row in list(csv.reader(fh))[1:]}
+    assert cells == {"'" + n for n in names}
+    table = read_table(out / "b-vs-a" / "points.csv", sep=",", label="points.csv", required=("channel",))
+    assert sorted(set(table["channel"])) == sorted(names)
+    assert (table["estimate"].abs() >= 0).all()  # numbers (negative ones too) stay numbers
