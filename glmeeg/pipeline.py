@@ -378,7 +378,8 @@ def fit_subjects(plan: AnalysisPlan, *, backend: Backend | None = None, cache: F
         facts[i] = dataclasses.replace(fit, betas=np.empty((0, 0)))  # the betas are not needed again
 
     for i, job in enumerate(jobs):
-        fit = None if (cache is None or refit) else cache.load(job.key, subject=job.subject)
+        fit = None if (cache is None or refit) else cache.load(
+            job.key, subject=job.subject, shape=(job.design.shape[1], job.n_points))
         if fit is not None:
             keep(i, fit)
             log.info("subject %s: fit taken from the cache", job.subject)

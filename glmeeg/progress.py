@@ -73,6 +73,22 @@ class ProgressBars:
             self._ids.clear()
 
 
+class _ConsoleLines(logging.Handler):
+    """Log records printed above the live progress bars, each as one line: the terminal may
+    fold a long line, but no line break is added (rich's own log handler wraps and adds
+    columns)."""
+
+    def __init__(self, console) -> None:
+        super().__init__()
+        self.console = console
+
+    def emit(self, record: logging.LogRecord) -> None:
+        try:
+            self.console.print(self.format(record), soft_wrap=True, markup=False, highlight=False)
+        except Exception:  # noqa: BLE001 - logging must never break the run
+            self.handleError(record)
+
+
 def configure_logging(stream: TextIO, *, verbose: bool = False, quiet: bool = False,
                       console=None) -> None:
     """Send the ``glmeeg`` logger to ``stream``: INFO with ``verbose``, ERROR with ``quiet``,
@@ -81,14 +97,12 @@ def configure_logging(stream: TextIO, *, verbose: bool = False, quiet: bool = Fa
     for h in list(logger.handlers):
         if getattr(h, _HANDLER_MARK, False):
             logger.removeHandler(h)
+    handler: logging.Handler
     if console is not None:
-        from rich.logging import RichHandler
-
-        handler: logging.Handler = RichHandler(console=console, show_time=False, show_path=False)
-        handler.setFormatter(logging.Formatter("%(message)s"))
+        handler = _ConsoleLines(console)
     else:
         handler = logging.StreamHandler(stream)
-        handler.setFormatter(logging.Formatter("glmeeg: %(message)s"))
+    handler.setFormatter(logging.Formatter("glmeeg: %(message)s"))
     setattr(handler, _HANDLER_MARK, True)
     logger.addHandler(handler)
     logger.setLevel(logging.ERROR if quiet else logging.INFO if verbose else logging.WARNING)

@@ -22,9 +22,10 @@ from .errors import StudyError
 
 __all__ = ["SubjectJob", "SubjectFit", "run_subject_job", "job_memory", "FIT_FORMAT"]
 
-# Bumped whenever a change to the fitting code can change a fit's bits: old cache entries then
+# Bumped whenever a change to the fitting code can change a fit's bits, or the cache entry's
+# layout changes (2: the entry carries its key, shape, dtype and SHA-256): old cache entries then
 # no longer match any key.
-FIT_FORMAT = 1
+FIT_FORMAT = 2
 
 
 @dataclass(frozen=True)
@@ -71,7 +72,7 @@ class SubjectJob:
         import numba
         import scipy
 
-        from . import __version__
+        from ._version import __version__
 
         def digest(a):
             return None if a is None else hashlib.sha256(np.ascontiguousarray(a).tobytes()).hexdigest()

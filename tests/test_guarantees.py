@@ -300,8 +300,13 @@ def test_library_warnings_become_one_line_notes(tmp_path, monkeypatch):
     with its file, line number and source line."""
     import warnings
 
+    import logging
+
     import glmeeg.pipeline as pipeline
 
+    # A command run earlier in this process left its log handler (on its own stream); `check`
+    # sets up none, as in a fresh process.
+    monkeypatch.setattr(logging.getLogger("glmeeg"), "handlers", [])
     design = write_study(tmp_path / "study", n_subjects=6, n_trials=12, n_channels=3, n_times=5)
     original = pipeline.plan_analysis
 
@@ -339,3 +344,24 @@ def test_text_cells_that_spreadsheets_would_evaluate_are_written_as_text(tmp_pat
     table = read_table(out / "b-vs-a" / "points.csv", sep=",", label="points.csv", required=("channel",))
     assert sorted(set(table["channel"])) == sorted(names)
     assert (table["estimate"].abs() >= 0).all()  # numbers (negative ones too) stay numbers
+
+
+def test_a_long_note_on_a_terminal_stays_one_line():
+    """On a terminal the log is printed above the progress bars; a note longer than the
+    terminal is one line (the terminal may fold it), never broken by glmeeg."""
+    import io
+    import logging
+
+    from rich.console import Console
+
+    from glmeeg.progress import configure_logging
+
+    stream = io.StringIO()
+    console = Console(file=stream, force_terminal=True, width=40, color_system=None)
+    configure_logging(stream, console=console)
+    try:
+        note = "subject s03: cached fit 0123456789ab failed verification (digest mismatch); refitting"
+        logging.getLogger("glmeeg").warning(note)
+    finally:
+        configure_logging(io.StringIO())
+    assert stream.getvalue() == f"glmeeg: {note}\n"

@@ -81,7 +81,8 @@ def test_killed_run_resumes_without_refitting(design, tmp_path):
     cached = sorted((out / CACHE_FOLDER).iterdir())
     assert len(cached) == 4 and all(p.suffix == ".npz" for p in cached)
     before = {p.name: (p.stat().st_ino, p.stat().st_mtime_ns) for p in cached}
-    subjects = {FitCache(out / CACHE_FOLDER).load(p.stem, subject=s) is not None and s
+    # Betas of 4 design columns (intercept, b, c, intensity) x 4 channels x 8 times.
+    subjects = {FitCache(out / CACHE_FOLDER).load(p.stem, subject=s, shape=(4, 32)) is not None and s
                 for p in cached for s in [f"s{i:02d}" for i in range(1, 11)]} - {False}
     assert len(subjects) == 4
 
