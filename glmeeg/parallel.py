@@ -15,6 +15,13 @@ Backends:
     are scattered to every worker once; a task whose worker dies is run again on another one
     (up to Dask's ``distributed.scheduler.allowed-failures`` times).
 
+Security: the local cluster started for ``workers=N`` speaks TLS only, with a certificate made
+for the run and held in memory (:meth:`distributed.security.Security.temporary`): scheduler,
+workers and glmeeg's client authenticate each other with it, so nobody else on the machine can
+connect to the cluster or submit work to it. A client of an existing scheduler takes its
+credentials from Dask's configuration (``distributed.comm.tls.*``, or the
+``distributed.client.security-loader`` hook), as any Dask client does.
+
 Dask is optional (``pip install "glmeeg[dask]"``); it is imported only when asked for.
 """
 
@@ -100,6 +107,12 @@ class DaskBackend:
     task_threads: int = 1
 
     @property
+    def security(self) -> Any:
+        """The client's ``distributed.security.Security``: for the local cluster of
+        :func:`open_backend`, the run's temporary TLS credentials (the only ones it accepts)."""
+        return self.client.security
+
+    @property
     def workers(self) -> int:
         try:
             info = self.client.scheduler_info(n_workers=-1)
@@ -181,6 +194,50 @@ def _need_distributed(what: str):
     return distributed
 
 
+def _run_security(distributed, what: str):
+    """A self-signed certificate for every role of the run's local cluster, in memory only
+    (``Security.temporary``, which requires ``cryptography`` and encryption on every comm)."""
+    try:
+        return distributed.Security.temporary()
+    except ImportError:
+        raise ExecutionError(f"{what}: the local Dask cluster's TLS certificate needs the "
+                             "cryptography package; install it with pip install \"glmeeg[dask]\"") from None
+
+
+def _scheduler_security(distributed, scheduler: str):
+    """The client's security for an existing scheduler, from Dask's configuration.
+
+    None when a ``distributed.client.security-loader`` is configured: the Client then calls it,
+    as it does for any address. Otherwise ``Security()``, which reads ``distributed.comm.tls.*``
+    and ``distributed.comm.require-encryption`` (config files or ``DASK_DISTRIBUTED__COMM__...``
+    variables); a mismatch of address and configuration is refused here, in one line, because
+    the Client would raise a TypeError or RuntimeError mid-connection and leave its event loop
+    running.
+    """
+    import dask
+    from distributed.comm import parse_address
+
+    if dask.config.get("distributed.client.security-loader", None):
+        return None
+    try:
+        security = distributed.Security()
+    except (ValueError, TypeError, ImportError) as e:  # bad TLS version; OpenSSL before 1.1.1
+        raise ExecutionError(f"--scheduler {scheduler}: Dask's TLS configuration is not usable "
+                             f"({_first_line(e)})") from None
+    scheme = parse_address(scheduler)[0].lower()
+    encrypted = scheme in ("tls", "wss")  # Dask's two comms that take the TLS credentials
+    if encrypted and not (security.tls_ca_file and security.tls_client_cert):
+        raise ExecutionError(f"--scheduler {scheduler}: a {scheme}:// scheduler needs the client's "
+                             "certificate in Dask's configuration (distributed.comm.tls.ca-file, "
+                             "distributed.comm.tls.client.cert and .key, or the "
+                             "DASK_DISTRIBUTED__COMM__TLS__... environment variables)")
+    if security.require_encryption and not encrypted:
+        raise ExecutionError(f"--scheduler {scheduler}: Dask's configuration requires encryption "
+                             "(distributed.comm.require-encryption); give the scheduler's tls:// "
+                             "address")
+    return security
+
+
 @contextmanager
 def open_backend(*, workers: int = 1, scheduler: str | None = None, client: Any = None,
                  timeout: float = 10.0, worker_timeout: float = 60.0) -> Iterator[Backend]:
@@ -190,9 +247,12 @@ def open_backend(*, workers: int = 1, scheduler: str | None = None, client: Any 
     ----------
     workers : int, default 1
         Local execution: 1 runs everything in this process; more starts a local Dask cluster of
-        that many worker processes (loopback only), with the machine's cores shared among them.
+        that many worker processes (loopback only, TLS with a temporary certificate of the run),
+        with the machine's cores shared among them.
     scheduler : str, optional
-        Address of an existing Dask scheduler (``tcp://host:8786``); ``workers`` must then be 1.
+        Address of an existing Dask scheduler (``tcp://host:8786``, or ``tls://host:8786`` with
+        the client's certificate in Dask's ``distributed.comm.tls.*`` configuration); ``workers``
+        must then be 1.
     client : distributed.Client, optional
         An existing client to use (it is left open).
     timeout : float, default 10
@@ -203,9 +263,10 @@ def open_backend(*, workers: int = 1, scheduler: str | None = None, client: Any 
     Raises
     ------
     ExecutionError
-        Dask is not installed, the scheduler cannot be reached or has no worker, the local
-        cluster does not start, ``workers`` < 1, or both ``workers`` and ``scheduler`` are
-        given.
+        Dask (or, for the local cluster's certificate, ``cryptography``) is not installed, the
+        scheduler cannot be reached, refuses the credentials or has no worker, Dask's TLS
+        configuration does not fit the scheduler's address, the local cluster does not start,
+        ``workers`` < 1, or both ``workers`` and ``scheduler`` are given.
     """
     if client is not None:
         yield DaskBackend(client)
@@ -215,8 +276,11 @@ def open_backend(*, workers: int = 1, scheduler: str | None = None, client: Any 
             raise ExecutionError(f"--workers {workers} and --scheduler {scheduler}: give one of them "
                                  "(the scheduler's cluster has its own workers)")
         distributed = _need_distributed("--scheduler")
+        security = _scheduler_security(distributed, scheduler)
         try:
-            c = distributed.Client(scheduler, timeout=timeout, set_as_default=False)
+            c = distributed.Client(scheduler, timeout=timeout, set_as_default=False, security=security)
+        # OSError covers ssl.SSLError (a certificate file that cannot be loaded) and Dask's
+        # CommClosedError / FatalCommClosedError (credentials the scheduler refuses).
         except (OSError, TimeoutError, ValueError, TypeError) as e:
             raise ExecutionError(f"--scheduler {scheduler}: cannot reach the Dask scheduler "
                                  f"({_first_line(e)})") from None
@@ -236,20 +300,23 @@ def open_backend(*, workers: int = 1, scheduler: str | None = None, client: Any 
         yield InProcess()
         return
     distributed = _need_distributed(f"--workers {workers}")
+    security = _run_security(distributed, f"--workers {workers}")
     threads = max(1, (os.cpu_count() or 1) // workers)
     try:
         with warnings.catch_warnings():  # "port 8787 in use" when another cluster runs: harmless
             warnings.simplefilter("ignore", UserWarning)
             # One task at a time per worker (memory: one subject per worker), numba sharing
-            # the cores among the workers.
+            # the cores among the workers. Loopback alone does not keep other local users out:
+            # every comm is TLS with the run's certificate, required both ways.
             cluster = distributed.LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                                                host="127.0.0.1", dashboard_address=None,
-                                               silence_logs=logging.ERROR)
+                                               silence_logs=logging.ERROR, security=security,
+                                               protocol="tls")
     except Exception as e:  # noqa: BLE001 - no sockets, no processes ...
         raise ExecutionError(f"--workers {workers}: the local Dask cluster did not start "
                              f"({_first_line(e)})") from None
     try:
-        c = distributed.Client(cluster, set_as_default=False)
+        c = distributed.Client(cluster, set_as_default=False, security=security)
         try:
             yield DaskBackend(c, task_threads=threads)
         finally:

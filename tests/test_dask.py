@@ -4,17 +4,26 @@ A ``dask.distributed.LocalCluster`` of 2 worker processes on the loopback interf
 demo study's four tests (TFCE with sign-flipping, a cluster-mass F test, max-statistic, and a
 TFCE group comparison under permutation) with few resamplings; every array of every result
 must equal the in-process run bit for bit. One test kills a worker process mid-run.
+
+The local cluster glmeeg starts itself (``--workers``) speaks TLS with a certificate of the
+run: clients without it are refused, and a ``tls://`` scheduler's client takes its
+certificate from Dask's configuration.
 """
 
 from __future__ import annotations
 
+import operator
 import os
 import signal
+import subprocess
 import sys
 from pathlib import Path
 
+import dask
 import distributed  # in the test extra: these tests never skip
 import pytest
+from distributed.comm.core import CommClosedError, FatalCommClosedError
+from distributed.security import Security
 from typer.testing import CliRunner
 
 from glmeeg.cli import app
@@ -48,12 +57,27 @@ def in_process(study):
 
 @pytest.fixture(scope="module")
 def client():
-    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                       host="127.0.0.1", dashboard_address=None)
-    c = distributed.Client(cluster, set_as_default=False)
-    yield c
-    c.close()
-    cluster.close()
+    # Tests below kill this cluster's workers again and again. lost-worker-timeout (15 s) after
+    # a worker is lost, Dask's SpecCluster closes its nanny for good if no worker of that name
+    # is registered (distributed/deploy/spec.py, _update_worker_status): a timer of an earlier
+    # kill firing while the nanny restarts a later one left the cluster a worker short (seen:
+    # wait_for_workers(2) timing out, and once no worker at all, so the die test hung).
+    with dask.config.set({"distributed.deploy.lost-worker-timeout": "1h"}):
+        cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                           host="127.0.0.1", dashboard_address=None)
+        c = distributed.Client(cluster, set_as_default=False)
+        yield c
+        c.close()
+        cluster.close()
+
+
+@pytest.fixture(scope="module")
+def own_cluster():
+    """The backend of ``--workers 2``: the TLS LocalCluster glmeeg starts, and its client."""
+    from glmeeg.parallel import open_backend
+
+    with open_backend(workers=2) as backend:
+        yield backend
 
 
 def assert_identical(a, b) -> None:
@@ -165,3 +189,108 @@ def test_a_task_whose_worker_dies_on_every_try_is_one_error(client):
     with pytest.raises(ExecutionError, match=r"^subject s99: the Dask worker running it died on every try"):
         DaskBackend(client).map(_die, [0], labels=["subject s99"])
     client.wait_for_workers(2, timeout=60)
+
+
+# A client's connection attempt fails at once when refused; the timeout only bounds a hang.
+REFUSED_TIMEOUT = 20
+
+
+def test_the_workers_cluster_refuses_clients_without_the_runs_certificate(own_cluster):
+    """Nobody but glmeeg's client can connect to (or submit work to) its local cluster."""
+    address = own_cluster.client.scheduler.address
+    # LocalCluster(protocol="tls") listens on tls:// only (distributed/deploy/local.py).
+    assert address.startswith("tls://127.0.0.1:"), address
+    # Security.temporary: require_encryption=True and one self-signed certificate as the CA and
+    # every role's certificate (distributed/security.py).
+    assert own_cluster.security.require_encryption
+
+    # Positive control: the run's own credentials connect and run a task, so the refusals
+    # below are refusals of the credentials, not of any connection.
+    with distributed.Client(address, security=own_cluster.security, timeout=REFUSED_TIMEOUT,
+                            set_as_default=False) as own:
+        assert own.submit(operator.add, 1, 2).result(timeout=60) == 3
+
+    # (a) No credentials, plain TCP: the TLS listener drops the connection, which Dask reports
+    # as CommClosedError (ConnectionResetError seen; distributed/comm/tcp.py,
+    # convert_stream_closed_error).
+    with pytest.raises(CommClosedError):
+        distributed.Client(address.replace("tls://", "tcp://"), timeout=REFUSED_TIMEOUT,
+                           set_as_default=False)
+    # (b) Another temporary certificate: the client cannot verify the scheduler's certificate
+    # (SSLCertVerificationError, raised by TLSConnector.connect as FatalCommClosedError "TLS
+    # certificate does not match", distributed/comm/tcp.py).
+    with pytest.raises(FatalCommClosedError, match="TLS certificate does not match"):
+        distributed.Client(address, security=Security.temporary(), timeout=REFUSED_TIMEOUT,
+                           set_as_default=False)
+    # (c) A client that trusts the scheduler's certificate (it is sent in every handshake, so
+    # it is no secret) but shows its own: the scheduler requires a client certificate signed by
+    # the run's key (Security._get_tls_context: "Bidirectional authentication",
+    # ssl.CERT_REQUIRED) and drops the connection. Under TLS 1.3 the client learns it on its
+    # first read, as the scheduler's "unknown ca" alert (FatalCommClosedError) or, when the
+    # close wins the race, as SSLEOFError (CommClosedError): both seen, both CommClosedError
+    # (convert_stream_closed_error, distributed/comm/tcp.py).
+    other = Security.temporary()
+    forged = Security(require_encryption=True, tls_ca_file=own_cluster.security.tls_ca_file,
+                      tls_client_cert=other.tls_client_cert, tls_client_key=other.tls_client_key)
+    with pytest.raises(CommClosedError, match="UNKNOWN_CA|SSLEOFError"):
+        distributed.Client(address, security=forged, timeout=REFUSED_TIMEOUT, set_as_default=False)
+    # The refused clients left the cluster as it was: glmeeg's client still runs tasks.
+    assert own_cluster.map(operator.add, [1, 2], shared=10) == [11, 12]
+
+
+def test_a_tls_scheduler_takes_its_certificate_from_dasks_configuration(own_cluster, tmp_path):
+    """--scheduler tls://... with the client's certificate in DASK_DISTRIBUTED__COMM__TLS__...
+    environment variables (what a user of an existing TLS cluster sets) connects and runs."""
+    files = {}
+    for name, pem in (("ca", own_cluster.security.tls_ca_file),
+                      ("cert", own_cluster.security.tls_client_cert),
+                      ("key", own_cluster.security.tls_client_key)):
+        files[name] = tmp_path / f"{name}.pem"
+        files[name].write_text(pem)
+        files[name].chmod(0o600)
+    # Dask reads DASK_* variables when it is imported: "__" nests keys and "_" equals "-"
+    # (dask/config.py, collect_env). A fresh process, so this process's configuration is
+    # left alone.
+    env = dict(os.environ, DASK_DISTRIBUTED__COMM__TLS__CA_FILE=str(files["ca"]),
+               DASK_DISTRIBUTED__COMM__TLS__CLIENT__CERT=str(files["cert"]),
+               DASK_DISTRIBUTED__COMM__TLS__CLIENT__KEY=str(files["key"]))
+    proc = subprocess.run([sys.executable, "-c", USE_TLS_SCHEDULER, own_cluster.client.scheduler.address],
+                          env=env, capture_output=True, text=True, timeout=600)
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout.strip() == "DaskBackend [11, 12]", proc.stdout
+
+
+USE_TLS_SCHEDULER = """
+import operator, sys
+from glmeeg.parallel import open_backend
+with open_backend(scheduler=sys.argv[1]) as backend:
+    print(type(backend).__name__, backend.map(operator.add, [1, 2], shared=10))
+"""
+
+
+def test_a_tls_scheduler_without_a_configured_certificate_is_one_line_exit_2(study, own_cluster,
+                                                                             tmp_path):
+    """Without Dask TLS configuration a tls:// client has no ssl_context, on which Dask's
+    connector raises TypeError mid-connection (distributed/comm/tcp.py, _expect_tls_context);
+    glmeeg says what to configure instead."""
+    address = own_cluster.client.scheduler.address
+    out = tmp_path / "out"
+    with dask.config.set({"distributed.comm.tls.ca-file": None, "distributed.comm.tls.client.cert": None,
+                          "distributed.comm.tls.client.key": None}):
+        result = CliRunner().invoke(app, ["run", str(study), "--out", str(out), "--scheduler", address])
+    assert result.exit_code == 2, result.output
+    line = result.stderr.strip()
+    assert line.count("\n") == 0 and line.startswith(
+        f"error: --scheduler {address}: a tls:// scheduler needs the client's certificate in Dask's "
+        "configuration (distributed.comm.tls.ca-file"), line
+    assert not out.exists()
+
+
+def test_missing_cryptography_is_a_clear_error(study, monkeypatch, tmp_path):
+    """Security.temporary imports cryptography (distributed/security.py)."""
+    monkeypatch.setitem(sys.modules, "cryptography", None)  # import cryptography -> ImportError
+    result = CliRunner().invoke(app, ["run", str(study), "--out", str(tmp_path / "o"), "--workers", "2"])
+    assert result.exit_code == 2, result.output
+    assert result.stderr.startswith("error: --workers 2: the local Dask cluster's TLS certificate needs "
+                                    "the cryptography package; install it with pip install")
+    assert not (tmp_path / "o").exists()
