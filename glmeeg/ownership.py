@@ -3,11 +3,13 @@
 glmeeg never deletes or overwrites a file it did not write. Three kinds of place are written:
 
 * **Result folders** (``glmeeg run --out DIR``). ``DIR/run.json`` lists every file of the run
-  (``files``); a folder is an earlier result, and may be replaced as a whole, only when its
-  ``run.json`` is glmeeg's (a JSON object with the result schema version, the provenance and
-  the file list) and the folder holds nothing else: no file, folder or link that is not on the
-  list, apart from the subject-fit cache (``subject-fits/``, whose entries have glmeeg's own
-  names). :func:`foreign_entries` finds what is not glmeeg's.
+  with the SHA-256 of its bytes (``files``); a folder is an earlier result, and may be replaced
+  as a whole, only when its ``run.json`` is glmeeg's (a JSON object with the result schema
+  version, the provenance and the file list), every listed file still has the bytes glmeeg
+  wrote, and the folder holds nothing else: no file, folder or link that is not on the list,
+  apart from the subject-fit cache (``subject-fits/``, whose entries have glmeeg's own names).
+  :func:`unowned_entries` finds what is not glmeeg's. Like the cache's digests, the list guards
+  against accidents and mistakes, not against someone who forges it together with its digests.
 * **Demo folders** (``glmeeg demo DIR``), listed in ``DIR/demo.json`` the same way.
 * **Single output files** (``--out FILE``, ``--csv``, ``--plot``, netCDF exports). An existing
   file is replaced only when it carries glmeeg's mark: a report's ``generator`` tag, the
@@ -17,6 +19,7 @@ glmeeg never deletes or overwrites a file it did not write. Three kinds of place
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import re
@@ -25,14 +28,15 @@ from pathlib import Path
 
 from .errors import GlmeegError
 
-__all__ = ["CACHE_ENTRY", "GENERATOR", "check_replaceable", "describe", "foreign_entries",
-           "read_file_list", "relative_files", "png_is_glmeeg"]
+__all__ = ["CACHE_ENTRY", "GENERATOR", "check_replaceable", "describe", "digests", "file_digest",
+           "foreign_entries", "read_file_list", "relative_files", "png_is_glmeeg", "unowned_entries"]
 
 # The report's <head> tag and the PNG text glmeeg writes (see report.py and results.py).
 GENERATOR = "glmeeg"
 GENERATOR_TAG = '<meta name="generator" content="glmeeg'
 
 # Names of the subject-fit cache (cache.py): entries, and the temporary files of their writes.
+_DIGEST = re.compile(r"[0-9a-f]{64}")
 CACHE_ENTRY = re.compile(r"[0-9a-f]{64}\.npz|\.[0-9a-f]{16}\.[A-Za-z0-9_]{1,16}\.partial")
 
 # A file list is only read from a run.json of at most this size; a folder is examined up to
@@ -49,10 +53,20 @@ def _safe_relative(name) -> bool:
     return not name.startswith("/") and all(p not in ("", ".", "..") for p in parts)
 
 
-def read_file_list(path: Path, *, schema_version: int, kind: str) -> set[str] | None:
-    """The ``files`` list of a glmeeg-written ``run.json`` (or ``demo.json``); None when the file
-    is not glmeeg's: not a JSON object, another schema version, no provenance, no file list, or
-    a list holding a name that is not a plain relative path."""
+def file_digest(path: Path) -> str:
+    """SHA-256 of a file's bytes (read in pieces)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def read_file_list(path: Path, *, schema_version: int, kind: str) -> dict[str, str] | None:
+    """The ``files`` of a glmeeg-written ``run.json`` (or ``demo.json``): relative path ->
+    SHA-256 of the file as glmeeg wrote it. None when the file is not glmeeg's: not a JSON
+    object, another schema version, no provenance, no file list, or a list holding a name that
+    is not a plain relative path or a value that is not a digest."""
     try:
         if path.is_symlink() or not path.is_file() or path.stat().st_size > _MAX_LIST_BYTES:
             return None
@@ -67,18 +81,45 @@ def read_file_list(path: Path, *, schema_version: int, kind: str) -> set[str] | 
     if not isinstance(prov, dict) or not isinstance(prov.get("glmeeg_version"), str):
         return None
     files = meta.get("files")
-    if not isinstance(files, list) or not all(_safe_relative(f) for f in files):
+    if not isinstance(files, dict) or not all(_safe_relative(f) and isinstance(d, str)
+                                              and _DIGEST.fullmatch(d) for f, d in files.items()):
         return None
-    return set(files)
+    return dict(files)
 
 
-def relative_files(folder: Path) -> list[str]:
+def digests(folder: Path, names) -> dict[str, str]:
+    """``{name: SHA-256}`` of files under ``folder`` (the list a writer records)."""
+    return {n: file_digest(folder / n) for n in sorted(names)}
+
+
+def relative_files(folder: Path, *, exclude: tuple[str, ...] = ()) -> list[str]:
     """Every file under ``folder`` as a sorted list of ``/``-separated relative paths."""
     out = []
     for dirpath, _, names in os.walk(folder):
         rel = Path(dirpath).relative_to(folder)
         out += [(rel / n).as_posix() for n in names]
-    return sorted(out)
+    return sorted(f for f in out if f not in exclude)
+
+
+def unowned_entries(folder: Path, files: dict[str, str] | None, *, listing: str,
+                    cache: str | None = None, delegated: tuple[str, ...] = ()) -> list[str]:
+    """What in ``folder`` glmeeg may not replace: entries not on the list ``files``
+    (:func:`foreign_entries`; ``listing``, the file holding the list, counts as listed when
+    the list was read) and listed files whose bytes are no longer those glmeeg wrote (an
+    edited report, a table opened and saved by a spreadsheet). At most a few names."""
+    owned = set() if files is None else set(files) | {listing}
+    files = files or {}
+    found = foreign_entries(folder, owned, cache=cache, delegated=delegated)
+    for name, digest in sorted(files.items()):
+        if len(found) >= _SHOWN:
+            break
+        p = folder / name
+        try:
+            if p.is_file() and not p.is_symlink() and file_digest(p) != digest:
+                found.append(f"{name} (changed since glmeeg wrote it)")
+        except OSError:
+            found.append(name)
+    return found
 
 
 def foreign_entries(folder: Path, owned: set[str], *, cache: str | None = None,
@@ -185,10 +226,17 @@ def check_replaceable(path: Path, *, kind: str, label: str) -> None:
     GlmeegError
         ``path`` is a link, or exists and does not carry glmeeg's mark (tables never do).
     """
-    if path.is_symlink():
-        raise GlmeegError(f"{label}: {path} is a symbolic link; give the path of a new file")
-    if not path.exists() or path.is_dir():
-        return
+    try:
+        if path.is_symlink():
+            raise GlmeegError(f"{label}: {path} is a symbolic link; give the path of a new file")
+        if not path.exists() or path.is_dir():
+            return
+        regular = path.is_file()
+    except OSError as e:  # a name too long, a loop of links, no permission
+        raise GlmeegError(f"{label}: {path} cannot be examined ({e.strerror or e})") from None
+    if not regular:  # a FIFO or a device: opening it could block or read forever
+        raise GlmeegError(f"{label}: {path} exists and is not a regular file; glmeeg does not "
+                          "replace it (choose another file name)")
     if not _is_glmeeg_file(path, kind):
         what = ("a table glmeeg cannot tell it wrote" if kind == "table"
                 else "a file glmeeg did not write")

@@ -9,6 +9,7 @@ EEG data beyond the array headers, so every input error surfaces before any fitt
 from __future__ import annotations
 
 import dataclasses
+import os
 import logging
 from dataclasses import dataclass
 from pathlib import Path
@@ -125,7 +126,7 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
         if root is None:
             raise ValueError("root is needed when the design is given as a DesignSpec")
     else:
-        design_file = Path(design)
+        design_file = Path(os.path.abspath(design))
         spec = load_design(design_file)
         root = design_file.parent if root is None else root
     study = read_study(spec.data, root=root)

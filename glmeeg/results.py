@@ -140,25 +140,27 @@ def _write_atomically(path: Path, write, *, label: str, kind: str) -> Path:
     if not path.absolute().parent.is_dir():
         raise GlmeegError(f"{label}: {path} cannot be written (folder {path.absolute().parent} "
                           "does not exist)")
-    tmp = path.with_name(f".{path.name}.partial")
+    tmp = None
     try:
+        # A new file of a random name (created exclusively): never a file or link of anyone else.
+        fd, name = tempfile.mkstemp(prefix=f".{path.name[:64]}.", suffix=".partial",
+                                    dir=path.absolute().parent)
+        os.close(fd)
+        tmp = Path(name)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes the file private; give it the usual mode
         write(tmp)
         tmp.replace(path)
     except OSError as e:
-        tmp.unlink(missing_ok=True)
+        if tmp is not None:
+            tmp.unlink(missing_ok=True)
         raise GlmeegError(f"{label}: {path} cannot be written ({e.strerror or e})") from None
     except BaseException:
-        tmp.unlink(missing_ok=True)
+        if tmp is not None:
+            tmp.unlink(missing_ok=True)
         raise
     return path
-
-
-def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for chunk in iter(lambda: f.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 def provenance(*, design_file: Path | None = None, inputs: dict[str, Path] | None = None) -> Provenance:
@@ -168,11 +170,13 @@ def provenance(*, design_file: Path | None = None, inputs: dict[str, Path] | Non
 
     from ._version import __version__
 
+    from .ownership import file_digest
+
     hashes = {}
     if design_file is not None:
-        hashes["design"] = _sha256(design_file)
+        hashes["design"] = file_digest(design_file)
     for label, path in (inputs or {}).items():
-        hashes[label] = _sha256(path)
+        hashes[label] = file_digest(path)
     return Provenance(glmeeg_version=__version__, python_version=platform.python_version(),
                       numpy_version=np.__version__, scipy_version=scipy.__version__,
                       pandas_version=pd.__version__, patsy_version=patsy.__version__,
@@ -926,47 +930,64 @@ def load_netcdf(path: str | Path) -> TestResult:
 
 
 RUN_LIST = "glmeeg run"  # run.json's ``written_by``: what marks a result folder as glmeeg's
+# First file of a folder being written, removed just before it is swapped in: what marks a
+# leftover folder as one of glmeeg's writes (with the writer's host and process).
+WRITING_MARK = ".glmeeg-writing"
+_NAME_IN_TEMP = 100  # characters of the output folder's name in its temporary folders' names
 
 
 def check_output_folder(out: str | Path) -> Path:
-    """Refuse an output folder that :func:`write_run` must not replace; return it as a Path.
+    """Refuse an output folder that :func:`write_run` must not replace; return it as an
+    absolute path.
 
     A folder may be replaced only when it is empty, holds only the subject-fit cache, or is an
     earlier glmeeg result: its ``run.json`` is glmeeg's (result schema, provenance, the list of
-    the files the run wrote) and it holds nothing that is not on that list
-    (:mod:`glmeeg.ownership`). A symbolic link is resolved: the results go where it points, and
-    the link stays as it is. Called before any fitting, so a wrong ``--out`` costs nothing;
-    :func:`write_run` checks again just before it swaps the new results in.
+    the files the run wrote with their SHA-256), every listed file still has those bytes and
+    the folder holds nothing that is not on the list (:mod:`glmeeg.ownership`). A symbolic
+    link is resolved: the results go where it points, and the link stays as it is. Called
+    before any fitting, so a wrong ``--out`` costs nothing; :func:`write_run` checks again just
+    before it swaps the new results in.
 
     Raises
     ------
     GlmeegError
-        ``out`` exists and is not a folder, is a dangling link, or holds files glmeeg did not
-        write (named in the message); or it cannot be created.
+        ``out`` exists and is not a folder, is a dangling link or a loop of links, its name is
+        too long, or it holds files glmeeg did not write or that changed since (named in the
+        message); or it cannot be created.
     """
     from .cache import CACHE_FOLDER
-    from .ownership import describe, foreign_entries, read_file_list
+    from .ownership import describe, read_file_list, unowned_entries
 
-    out = Path(out)
-    if out.is_symlink():
-        target = out.resolve()
-        if not target.exists():
-            raise GlmeegError(f"{out}: is a symbolic link to {target}, which does not exist; give "
-                              "a folder path")
-        out = target
-    if out.exists():
+    try:
+        out = Path(os.path.abspath(out))  # '.' and '..' by their real names
+    except FileNotFoundError:
+        raise GlmeegError(f"{out}: the working folder no longer exists (an earlier run replaced "
+                          "it); change into the folder again") from None
+    try:
+        if out.is_symlink():
+            target = out.resolve(strict=False)
+            if not target.exists():
+                raise GlmeegError(f"{out}: is a symbolic link to {target}, which does not exist; "
+                                  "give a folder path")
+            out = target
+        if len(os.fsencode(out.name)) > 255:
+            raise GlmeegError(f"{out.name[:40]}...: a folder name of more than 255 bytes")
+        exists = out.exists()
+    except (OSError, RuntimeError) as e:  # RuntimeError: pathlib's "Symlink loop"
+        raise GlmeegError(f"{out}: cannot be used as the output folder ({getattr(e, 'strerror', None) or e})") from None
+    if exists:
         if not out.is_dir():
             raise GlmeegError(f"{out}: exists and is not a folder; expected a new folder or an "
                               "earlier glmeeg result folder")
         owned = read_file_list(out / "run.json", schema_version=SCHEMA_VERSION, kind=RUN_LIST)
-        foreign = foreign_entries(out, owned or set(), cache=CACHE_FOLDER)
-        if foreign:
+        unowned = unowned_entries(out, owned, listing="run.json", cache=CACHE_FOLDER)
+        if unowned:
             why = ("its run.json was not written by this version of glmeeg"
                    if owned is None and (out / "run.json").exists() else "glmeeg replaces only its own "
                    "result folders")
-            raise GlmeegError(f"{out}: holds files glmeeg did not write ({describe(foreign)}); {why}: "
+            raise GlmeegError(f"{out}: holds files glmeeg did not write ({describe(unowned)}); {why}: "
                               "choose a new or empty output folder, or move those files away")
-    parent = out.absolute().parent
+    parent = out.parent
     while not parent.exists() and parent != parent.parent:
         parent = parent.parent
     if not parent.is_dir():
@@ -1012,30 +1033,59 @@ def _pid_alive(pid: int) -> bool:
     return True
 
 
+def _writer_gone(folder: Path, pid: int) -> bool:
+    """Whether the writer of a leftover folder has stopped: its mark names this host and a
+    process that no longer runs (a folder of another host's writer is left alone)."""
+    import socket
+
+    try:
+        mark = json.loads((folder / WRITING_MARK).read_text(encoding="utf-8"))
+    except (OSError, ValueError, UnicodeDecodeError, RecursionError):
+        mark = None
+    if isinstance(mark, dict) and mark.get("host") != socket.gethostname():
+        return False
+    return pid != os.getpid() and not _pid_alive(pid)
+
+
+def _is_glmeeg_write(folder: Path) -> bool:
+    """A leftover folder is glmeeg's when it still carries the mark of the write, or it is a
+    whole earlier result (swapped out, or between the two renames of the fallback swap)."""
+    from .cache import CACHE_FOLDER
+    from .ownership import read_file_list, unowned_entries
+
+    if (folder / WRITING_MARK).is_file() and not (folder / WRITING_MARK).is_symlink():
+        return True
+    owned = read_file_list(folder / "run.json", schema_version=SCHEMA_VERSION, kind=RUN_LIST)
+    return owned is not None and not unowned_entries(folder, owned, listing="run.json", cache=CACHE_FOLDER)
+
+
 def _leftovers(out: Path):
     """Folders a killed :func:`write_run` of ``out`` left beside it, with the writer's pid:
-    ``.NAME.PID.*.partial`` (results being written, or the earlier ones after the swap) and
-    ``.NAME.PID.old`` (the earlier results between the two renames of the fallback swap)."""
+    ``.NAME.PID.XXXXXXXX.partial`` (results being written, or the earlier ones after the swap)
+    and ``.NAME.PID.old`` (the earlier results between the two renames of the fallback swap).
+    Only glmeeg's own folders: the name's pattern and the mark of the write or a whole result."""
     import re
 
-    pattern = re.compile(rf"\.{re.escape(out.name)}\.(\d+)\.(old|[A-Za-z0-9_]+\.partial)")
+    name = re.escape(out.name[:_NAME_IN_TEMP])
+    # mkdtemp's random part: 8 characters of [a-z0-9_].
+    pattern = re.compile(rf"\.{name}\.(\d+)\.(old|[a-z0-9_]{{8}}\.partial)")
     try:
         entries = list(out.parent.iterdir())
     except OSError:
         return
     for p in entries:
         m = pattern.fullmatch(p.name)
-        if m and p.is_dir() and not p.is_symlink():
+        if m and p.is_dir() and not p.is_symlink() and _is_glmeeg_write(p):
             yield p, int(m.group(1)), m.group(2) == "old"
 
 
 def recover_results(out: str | Path) -> None:
     """Repair what a killed :func:`write_run` left: put the earlier results back when the kill
-    fell between the two renames of the fallback swap (``out`` missing), and remove partial
+    fell between the two renames of the fallback swap (``out`` missing), and remove glmeeg's
     folders of writers that are no longer running. Called before writing and loading."""
-    out = Path(out)
+    out = Path(os.path.abspath(out))
     for p, pid, old in list(_leftovers(out)):
-        if _pid_alive(pid) and pid != os.getpid():
+        if not _writer_gone(p, pid):
             continue
         if old and not (out.exists() or out.is_symlink()):
             os.replace(p, out)
@@ -1077,37 +1127,45 @@ def write_run(run: RunResult, out: str | Path, *, report: str | None = None) -> 
     a kill between them is repaired by :func:`recover_results` on the next write or load).
     So a run that fails or is killed leaves the earlier result at ``out`` complete and
     loadable, and never a partial folder under its name. The subject-fit cache
-    ``out/subject-fits`` is carried over.
+    ``out/subject-fits`` is carried over. ``run.json`` lists every file written with its
+    SHA-256 (:mod:`glmeeg.ownership`).
 
     Raises
     ------
     GlmeegError
-        ``out`` exists, is not empty and is not a glmeeg result folder.
+        ``out`` exists and holds files glmeeg did not write (see :func:`check_output_folder`),
+        or the results cannot be written there.
     """
+    import socket
+
     from .cache import CACHE_FOLDER
-    from .ownership import relative_files
+    from .ownership import digests, relative_files
 
     out = check_output_folder(out)  # resolves a link: the results go where it points
     recover_results(out)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.{os.getpid()}.", suffix=".partial",
-                                dir=out.parent))
-    umask = os.umask(0)
-    os.umask(umask)
-    os.chmod(tmp, 0o777 & ~umask)  # mkdtemp makes the folder private; give it the usual mode
+    tmp = None
     try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name[:_NAME_IN_TEMP]}.{os.getpid()}.",
+                                    suffix=".partial", dir=out.parent))
+        (tmp / WRITING_MARK).write_text(json.dumps({"host": socket.gethostname(), "pid": os.getpid()}))
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o777 & ~umask)  # mkdtemp makes the folder private; give it the usual mode
         for t in run.tests:
             t.save(tmp / t.name)
         if report is not None:
             (tmp / "report.html").write_text(report, encoding="utf-8")
-        _write_run_summary(run, tmp, relative_files(tmp) + ["run.json"])
+        written = relative_files(tmp, exclude=(WRITING_MARK,))
+        _write_run_summary(run, tmp, digests(tmp, written))
+        (tmp / WRITING_MARK).unlink()  # whole now: run.json accounts for every file
         _fsync_tree(tmp)
         check_output_folder(out)  # again: nothing of anyone else's may have arrived meanwhile
         if out.exists():
             if (out / CACHE_FOLDER).is_dir():  # the subject-fit cache stays with the results
                 os.replace(out / CACHE_FOLDER, tmp / CACHE_FOLDER)
             if not _exchange(tmp, out):
-                old = out.with_name(f".{out.name}.{os.getpid()}.old")
+                old = out.with_name(f".{out.name[:_NAME_IN_TEMP]}.{os.getpid()}.old")
                 os.replace(out, old)
                 try:
                     os.replace(tmp, out)
@@ -1119,43 +1177,46 @@ def write_run(run: RunResult, out: str | Path, *, report: str | None = None) -> 
             os.replace(tmp, out)
             tmp = None
         _fsync_dir(out.parent)
-    except BaseException:
+    except BaseException as e:
         if tmp is not None and tmp.exists():
             if (tmp / CACHE_FOLDER).is_dir() and out.is_dir() and not (out / CACHE_FOLDER).exists():
                 os.replace(tmp / CACHE_FOLDER, out / CACHE_FOLDER)  # the cache goes back
             shutil.rmtree(tmp, ignore_errors=True)
+        if isinstance(e, OSError):
+            raise GlmeegError(f"{out}: the results cannot be written ({e.strerror or e})") from None
         raise
     if tmp is not None:
         shutil.rmtree(tmp, ignore_errors=True)  # the earlier results, swapped out
     return out
 
 
-def _write_run_summary(run: RunResult, folder: Path, files: list[str]) -> None:
-    """``run.json``: the run's summary, marked as glmeeg's, with the list of the run's files."""
-    doc = {**run.run_summary(), "written_by": RUN_LIST, "files": sorted(set(files))}
+def _write_run_summary(run: RunResult, folder: Path, files: dict[str, str]) -> None:
+    """``run.json``: the run's summary, marked as glmeeg's, with the SHA-256 of every other
+    file of the run (run.json, the list itself, is glmeeg's when the list is)."""
+    doc = {**run.run_summary(), "written_by": RUN_LIST, "files": dict(sorted(files.items()))}
     (folder / "run.json").write_text(json.dumps(doc, indent=2, default=_plain) + "\n")
 
 
 def write_report(folder: str | Path, html: str, *, out: str | Path | None = None) -> Path:
     """Write a run's report: into its result folder (``report.html``, added to the folder's
-    file list) or, with ``out``, into that file. An existing file is replaced only when it is a
-    glmeeg report.
+    file list with its digest) or, with ``out``, into that file. An existing file is replaced
+    only when it is a glmeeg report.
 
     Raises
     ------
     GlmeegError
         The target cannot be written or is a file glmeeg did not write.
     """
-    from .ownership import read_file_list
+    from .ownership import file_digest, read_file_list
 
     if out is not None:
         return write_text(html, out, kind="html", label="--out")
     folder = Path(folder).resolve()
     path = write_text(html, folder / "report.html", kind="html", label="report")
     listed = read_file_list(folder / "run.json", schema_version=SCHEMA_VERSION, kind=RUN_LIST)
-    if listed is not None and "report.html" not in listed:
+    if listed is not None:
         doc = json.loads((folder / "run.json").read_text(encoding="utf-8"))
-        doc["files"] = sorted(listed | {"report.html"})
+        doc["files"] = dict(sorted({**listed, "report.html": file_digest(path)}.items()))
         write_text(json.dumps(doc, indent=2, default=_plain) + "\n", folder / "run.json",
                    kind="run-summary", label="run.json")
     return path

@@ -24,6 +24,7 @@ carry a 50-150 µV drift or spike on a few neighbouring channels.
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -39,6 +40,7 @@ __all__ = ["DEMO_DESIGN", "DEMO_TRUTH", "DemoTruth", "PlantedEffect", "check_dem
 # demo.json lists the files a demo wrote (glmeeg.ownership); the results folder has its own list.
 DEMO_LIST = "glmeeg demo"
 _DEMO_LIST_VERSION = 1
+_STAGE = re.compile(r"\.glmeeg-demo\.[a-z0-9_]{8}\.partial")
 
 
 def check_demo_folder(directory: str | Path) -> Path:
@@ -53,18 +55,28 @@ def check_demo_folder(directory: str | Path) -> Path:
     GlmeegError
         ``directory`` is not a folder, or holds files the demo did not write.
     """
-    from .errors import GlmeegError
-    from .ownership import describe, foreign_entries, read_file_list
+    import os
+    import shutil
 
-    root = Path(directory)
-    if root.is_symlink():
-        root = root.resolve()
-    if root.exists() and not root.is_dir():
+    from .errors import GlmeegError
+    from .ownership import describe, read_file_list, unowned_entries
+
+    root = Path(os.path.abspath(directory))
+    try:
+        if root.is_symlink():
+            root = root.resolve(strict=False)
+        exists, is_dir = root.exists(), root.is_dir()
+    except (OSError, RuntimeError) as e:  # RuntimeError: pathlib's "Symlink loop"
+        raise GlmeegError(f"{root}: cannot be used for the demo ({getattr(e, 'strerror', None) or e})") from None
+    if exists and not is_dir:
         raise GlmeegError(f"{root}: exists and is not a folder; expected a folder for the demo")
-    if not root.exists():
+    if not exists:
         return root
+    for stage in root.glob(".glmeeg-demo.*.partial"):  # what a killed demo was writing
+        if _STAGE.fullmatch(stage.name) and stage.is_dir() and not stage.is_symlink():
+            shutil.rmtree(stage, ignore_errors=True)
     owned = read_file_list(root / "demo.json", schema_version=_DEMO_LIST_VERSION, kind=DEMO_LIST)
-    foreign = foreign_entries(root, owned or set(), delegated=("results",))
+    foreign = unowned_entries(root, owned, listing="demo.json", delegated=("results",))
     if foreign:
         raise GlmeegError(f"{root}: holds files the demo did not write ({describe(foreign)}); "
                           "choose a new or empty folder for the demo")
@@ -431,8 +443,49 @@ def write_demo_study(directory: str | Path, *, n_subjects: int = 28, n_trials: i
         raise ValueError(f"n_subjects must be between 2 and 99, got {n_subjects}")
     if n_trials < 12:
         raise ValueError(f"n_trials must be at least 12, got {n_trials}")
+    import shutil
+    import tempfile
+
     root = check_demo_folder(directory)
     earlier = _earlier_demo_files(root)
+    root.mkdir(parents=True, exist_ok=True)
+    # Written into a hidden folder first and moved into place at the end, so an interrupted
+    # demo never leaves a study that mixes two demos.
+    stage = Path(tempfile.mkdtemp(prefix=".glmeeg-demo.", suffix=".partial", dir=root))
+    try:
+        design = _write_demo_files(stage, n_subjects=n_subjects, n_trials=n_trials, seed=seed)
+        _move_into_place(stage, root, earlier)
+    finally:
+        shutil.rmtree(stage, ignore_errors=True)
+    return root / design.name
+
+
+def _move_into_place(stage: Path, root: Path, earlier: dict[str, str]) -> None:
+    """Move the staged demo files into ``root`` and write ``demo.json`` (files of an earlier
+    demo that this one does not write stay listed). Ctrl-C is held back while the files move,
+    so the folder never holds half of each demo."""
+    import os
+    import signal
+
+    from .ownership import digests, relative_files
+
+    names = relative_files(stage)
+    listed = {**{f: d for f, d in earlier.items() if (root / f).is_file()}, **digests(stage, names)}
+    blocking = hasattr(signal, "pthread_sigmask")
+    if blocking:
+        held = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
+    try:
+        for name in names:
+            (root / name).parent.mkdir(parents=True, exist_ok=True)
+            os.replace(stage / name, root / name)
+        listed.pop("demo.json", None)
+        _write_demo_list(root, listed)
+    finally:
+        if blocking:
+            signal.pthread_sigmask(signal.SIG_SETMASK, held)
+
+
+def _write_demo_files(root: Path, *, n_subjects: int, n_trials: int, seed: int) -> Path:
     (root / "epochs").mkdir(parents=True, exist_ok=True)
 
     pos = np.array([standard_position(c) for c in CHANNELS])
@@ -465,26 +518,27 @@ def write_demo_study(directory: str | Path, *, n_subjects: int = 28, n_trials: i
                   "z": pos[:, 2].round(6)}).to_csv(root / "channels.tsv", sep="\t", index=False)
     design = root / "design.toml"
     design.write_text(DEMO_DESIGN, encoding="utf-8", newline="\n")
-    written = ["trials.csv", "subjects.csv", "channels.tsv", "planted_artefacts.csv", "design.toml",
-               "demo.json"] + [f"epochs/{sid}.npy" for sid in ids]
-    _write_demo_list(root, sorted({f for f in earlier if (root / f).is_file()} | set(written)))
     return design
 
 
-def _earlier_demo_files(root: Path) -> set[str]:
+def _earlier_demo_files(root: Path) -> dict[str, str]:
     from .ownership import read_file_list
 
-    return read_file_list(root / "demo.json", schema_version=_DEMO_LIST_VERSION, kind=DEMO_LIST) or set()
+    return read_file_list(root / "demo.json", schema_version=_DEMO_LIST_VERSION, kind=DEMO_LIST) or {}
 
 
-def _write_demo_list(root: Path, files: list[str]) -> None:
+def _write_demo_list(root: Path, files: dict[str, str]) -> None:
+    """``demo.json``: the demo's files with their SHA-256 (written atomically)."""
     import json
+    import os
 
     from ._version import __version__
 
     doc = {"written_by": DEMO_LIST, "schema_version": _DEMO_LIST_VERSION,
-           "provenance": {"glmeeg_version": __version__}, "files": files}
-    (root / "demo.json").write_text(json.dumps(doc, indent=2) + "\n", encoding="utf-8")
+           "provenance": {"glmeeg_version": __version__}, "files": dict(sorted(files.items()))}
+    tmp = root / ".demo.json.partial"
+    tmp.write_text(json.dumps(doc, indent=2) + "\n", encoding="utf-8")
+    os.replace(tmp, root / "demo.json")
 
 
 def _spans(result, channels: tuple[str, ...]) -> tuple[list[str], float, float, int]:

@@ -9,6 +9,7 @@ row or column at fault.
 from __future__ import annotations
 
 import csv
+import os
 import re
 from collections import Counter
 from dataclasses import dataclass, field
@@ -281,7 +282,7 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
         the wrong dtype, dimension or shape; the ``epoch`` column is out of range or repeated;
         the number of channels or frequencies does not match the data.
     """
-    root = Path(root)
+    root = Path(os.path.abspath(root))  # absolute: the working folder may be replaced by the run
     files: dict[str, Path] = {}
     warnings: list[str] = []
 

@@ -19,6 +19,7 @@ import hashlib
 import json
 import os
 import signal
+import socket
 import subprocess
 import sys
 from pathlib import Path
@@ -124,10 +125,33 @@ def test_recovery_restores_the_earlier_results_when_the_output_is_missing(tmp_pa
     dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
                           capture_output=True, text=True).stdout.strip()
     os.replace(out, tmp_path / f".out.{dead}.old")
-    (tmp_path / f".out.{dead}.abc123_x.partial").mkdir()
+    partial = tmp_path / f".out.{dead}.abc123_x.partial"  # a killed writer's, with its mark
+    partial.mkdir()
+    (partial / ".glmeeg-writing").write_text(json.dumps({"host": socket.gethostname(), "pid": int(dead)}))
+    # Look-alikes of the user's own: never glmeeg's to remove or move.
+    mine = tmp_path / f".out.{dead}.mine.partial"
+    mine.mkdir()
+    (mine / "notes.txt").write_text("mine")
+    unmarked = tmp_path / f".out.{dead}.zz9_abcd.partial"
+    unmarked.mkdir()
+    (unmarked / "notes.txt").write_text("mine")
     assert _seeds(out) == {1}  # loading repairs
     recover_results(out)
-    assert _clean(tmp_path) == ["out", "s"]
+    assert _clean(tmp_path) == sorted([mine.name, unmarked.name, "out", "s"])
+    assert (mine / "notes.txt").read_text() == "mine" and (unmarked / "notes.txt").read_text() == "mine"
+
+
+def test_a_folder_of_the_user_named_like_a_leftover_is_never_moved(tmp_path):
+    """A read-only command repairs only glmeeg's own leftovers: a user's ``.NAME.PID.old``
+    holding their files stays where it is."""
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
+                          capture_output=True, text=True).stdout.strip()
+    theirs = tmp_path / f".lo.{dead}.old"
+    theirs.mkdir()
+    (theirs / "data.txt").write_text("mine")
+    result = CliRunner().invoke(app, ["show", str(tmp_path / "lo")])
+    assert result.exit_code == 2
+    assert (theirs / "data.txt").read_text() == "mine" and not (tmp_path / "lo").exists()
 
 
 def _digests(folder: Path) -> dict:
@@ -169,6 +193,10 @@ def test_reruns_are_byte_identical(tmp_path, monkeypatch):
     b = json.loads((tmp_path / "out2" / "run.json").read_text())
     assert a["provenance"]["created"] == "2023-11-14T22:13:20+00:00"  # 1.7e9 s after 1970-01-01 UTC
     a["provenance"].pop("created"), b["provenance"].pop("created")
+    # The file list's digests differ exactly for the files that hold the time stamp.
+    changed = {f for f in a["files"] if a["files"][f] != b["files"][f]}
+    assert changed == differ - {"run.json"} and set(a["files"]) == set(b["files"])
+    a.pop("files"), b.pop("files")
     assert a == b
 
 

@@ -71,8 +71,11 @@ def test_user_files_added_to_a_real_result_folder_are_kept(design, tmp_path):
     assert listed["written_by"] == "glmeeg run"
     # The list is exactly what the run wrote (the cache has its own names).
     files = sorted(p.relative_to(out).as_posix() for p in out.rglob("*")
-                   if p.is_file() and p.parent.name != "subject-fits")
-    assert listed["files"] == files
+                   if p.is_file() and p.parent.name != "subject-fits" and p.name != "run.json")
+    assert sorted(listed["files"]) == files
+    # Each with the SHA-256 of its bytes (hashlib, computed here independently).
+    import hashlib
+    assert all(listed["files"][f] == hashlib.sha256((out / f).read_bytes()).hexdigest() for f in files)
     for extra in ("thesis.docx", "b-vs-a/my-figure.svg"):
         (out / extra).write_text("mine")
         before = snapshot(out)
@@ -93,7 +96,9 @@ def test_a_forged_file_list_still_refuses_what_it_does_not_list(design, tmp_path
     assert invoke("run", design, "--out", out, "-q", "--no-report").exit_code == 0
     doc = json.loads((out / "run.json").read_text())
     (out / "data.csv").write_text("mine")
-    for forged in ({**doc, "files": doc["files"] + ["../outside.txt"]},   # not a plain relative path
+    for forged in ({**doc, "files": {**doc["files"], "../outside.txt": "0" * 64}},  # not a plain relative path
+                   {**doc, "files": {**doc["files"], "data.csv": "not a digest"}},
+                   {**doc, "files": sorted(doc["files"])},   # a list without digests
                    {**doc, "schema_version": 99},
                    {k: v for k, v in doc.items() if k != "provenance"},
                    {k: v for k, v in doc.items() if k != "files"}):
@@ -168,3 +173,68 @@ def test_demo_refuses_a_folder_of_someone_else(tmp_path):
     before = snapshot(study)
     assert_clean_error(invoke("demo", study, "--subjects", "4", "-q"), ["design.toml", "demo did not write"])
     assert snapshot(study) == before
+
+
+def test_temporary_names_never_touch_files_of_the_user(design, tmp_path):
+    """Single files are written under a new random name beside the target: a file or a link
+    of the user's named like glmeeg's temporary files is left alone."""
+    out = tmp_path / "out"
+    assert invoke("run", design, "--out", out, "-q").exit_code == 0
+    victim = tmp_path / "victim.txt"
+    victim.write_text("precious")
+    (tmp_path / ".r.html.partial").symlink_to(victim)
+    (tmp_path / ".s.html.partial").write_text("mine")
+    assert invoke("report", out, "--out", tmp_path / "r.html").exit_code == 0
+    assert invoke("report", out, "--out", tmp_path / "s.html").exit_code == 0
+    assert victim.read_text() == "precious" and (tmp_path / ".s.html.partial").read_text() == "mine"
+    assert not (tmp_path / "r.html").is_symlink()
+
+
+def test_files_changed_since_glmeeg_wrote_them_are_not_replaced(design, tmp_path):
+    out = tmp_path / "out"
+    assert invoke("run", design, "--out", out, "-q").exit_code == 0
+    for name in ("report.html", "b-vs-a/points.csv"):
+        original = (out / name).read_bytes()
+        (out / name).write_bytes(original + b"my edit\n")
+        assert_clean_error(invoke("run", design, "--out", out, "-q"), [name, "changed since glmeeg wrote it"])
+        assert (out / name).read_bytes() == original + b"my edit\n"
+        (out / name).write_bytes(original)
+    # A list that claims a file of the user's, without its digest, does not make it glmeeg's.
+    doc = json.loads((out / "run.json").read_text())
+    (out / "thesis.docx").write_text("work")
+    (out / "run.json").write_text(json.dumps({**doc, "files": {**doc["files"], "thesis.docx": "0" * 64}}))
+    assert_clean_error(invoke("run", design, "--out", out, "-q"), ["thesis.docx"])
+    assert (out / "thesis.docx").read_text() == "work"
+
+
+def test_odd_output_paths_are_one_line_before_any_fitting(design, tmp_path, monkeypatch):
+    loop = tmp_path / "loop"
+    loop.symlink_to(tmp_path / "loop2")
+    (tmp_path / "loop2").symlink_to(loop)
+    assert_clean_error(invoke("run", design, "--out", loop, "-q"), ["loop"])
+    assert_clean_error(invoke("run", design, "--out", tmp_path / ("n" * 300), "-q"), ["too long"])
+    assert invoke("run", design, "--out", tmp_path / ("n" * 250), "-q").exit_code == 0  # temporary names fit
+    fifo = tmp_path / "pipe.html"
+    os.mkfifo(fifo)
+    out = tmp_path / "out"
+    assert invoke("run", design, "--out", out, "-q").exit_code == 0
+    assert_clean_error(invoke("report", out, "--out", fifo), ["pipe.html", "not a regular file"])
+    assert_clean_error(invoke("schema", "--out", fifo), ["pipe.html", "not a regular file"])
+    here = tmp_path / "here"
+    here.mkdir()
+    monkeypatch.chdir(here)
+    assert invoke("run", design, "--out", ".", "-q").exit_code == 0  # '.' by its real name
+    assert (here / "run.json").is_file() and hidden_beside(here) == []
+    # The run replaced the working folder (as `cd .` would show in a shell): after changing
+    # into it again, '.' is the earlier result and is replaced again.
+    assert_clean_error(invoke("run", design, "--out", ".", "-q"), ["working folder no longer exists"])
+    monkeypatch.chdir(here)
+    assert invoke("run", design, "--out", ".", "-q").exit_code == 0
+
+
+def test_demo_files_edited_by_the_user_are_not_replaced(tmp_path):
+    demo = tmp_path / "d"
+    assert invoke("demo", demo, "--subjects", "4", "-q").exit_code == 0
+    (demo / "design.toml").write_text((demo / "design.toml").read_text() + "# my change\n")
+    assert_clean_error(invoke("demo", demo, "--subjects", "4", "-q"), ["design.toml", "changed since"])
+    assert (demo / "design.toml").read_text().endswith("# my change\n")
