@@ -11,7 +11,9 @@ as it was; a run that is killed, interrupted or loses its workers keeps them.
 
 An entry is an uncompressed ``np.savez`` archive of two members, ``betas.npy`` (little-endian
 float64, C order) and ``meta.npy`` (a JSON object: the key, the subject, the fit's facts, the
-betas' shape, dtype and SHA-256). :meth:`FitCache.load` checks an entry before using it: sizes
+betas' shape, dtype and SHA-256), and a third, ``unusable.npy`` (sorted point indices, with
+their SHA-256 in the metadata), when the subject has points whose data are constant or fitted
+exactly. :meth:`FitCache.load` checks an entry before using it: sizes
 against the shape the job implies before anything is read (compressed members are refused, so
 nothing is inflated), the ``.npy`` headers, every metadata field and its type, the digest and
 that every beta is finite. An entry that cannot be read or fails a check is refitted, with one
@@ -46,7 +48,8 @@ CACHE_FOLDER = "subject-fits"
 
 log = logging.getLogger("glmeeg")
 
-_BETAS, _META = "betas.npy", "meta.npy"
+_BETAS, _META, _UNUSABLE = "betas.npy", "meta.npy", "unusable.npy"
+_INDEX = "<i8"  # the unusable points' indices on disk
 _DTYPE = "<f8"  # the betas on disk, whatever the machine's byte order
 # numpy writes a 2-d array's .npy header in 128 bytes (magic, length, dict padded to 64); the
 # bound leaves room for other numpy versions' padding and nothing like a payload.
@@ -54,7 +57,8 @@ _NPY_HEADER_MAX = 1024
 _META_MAX = 64 * 1024  # the JSON takes about 1.5 kB as a numpy unicode string
 _ZIP_OVERHEAD_MAX = 4096  # local headers, central directory and end records of two members
 _META_FIELDS = frozenset({"format", "subject", "key", "df_resid", "robust_iterations_max",
-                          "robust_unconverged_points", "sha256", "shape", "dtype"})
+                          "robust_unconverged_points", "sha256", "shape", "dtype",
+                          "unusable_points", "unusable_sha256"})
 _HEX64 = re.compile(r"[0-9a-f]{64}")
 
 # What reading a damaged or foreign file can raise (json's and unicode errors are ValueErrors;
@@ -132,6 +136,12 @@ def _check_meta(meta, *, key: str, subject: str, shape: tuple[int, int]) -> None
         raise _Refused(f"metadata robust_unconverged_points {robust[1]}, more than the {shape[1]} points")
     if not (isinstance(meta["sha256"], str) and _HEX64.fullmatch(meta["sha256"])):
         raise _Refused("metadata sha256 is not a SHA-256 digest")
+    count, digest = meta["unusable_points"], meta["unusable_sha256"]
+    if not (_is_int(count) and 0 <= count <= shape[1]):
+        raise _Refused(f"metadata unusable_points {count!r}, expected a count of at most {shape[1]}")
+    if (digest is None) != (count == 0) or (digest is not None and not (isinstance(digest, str)
+                                                                        and _HEX64.fullmatch(digest))):
+        raise _Refused("metadata unusable_sha256 does not fit unusable_points")
 
 
 class FitCache:
@@ -192,7 +202,8 @@ class FitCache:
 
     def _verified(self, path: Path, *, key: str, subject: str, shape: tuple[int, int]) -> SubjectFit:
         n_bytes = 8 * math.prod(shape)
-        bound = {_BETAS: _NPY_HEADER_MAX + n_bytes, _META: _META_MAX}
+        bound = {_BETAS: _NPY_HEADER_MAX + n_bytes, _META: _META_MAX,
+                 _UNUSABLE: _NPY_HEADER_MAX + 8 * shape[1]}
         # O_NONBLOCK: a FIFO put in an entry's place must not hang the run (no effect on files).
         with open(path, "rb", opener=lambda p, flags: os.open(p, flags | getattr(os, "O_NONBLOCK", 0))) as fh:
             st = os.fstat(fh.fileno())
@@ -204,8 +215,9 @@ class FitCache:
             with zipfile.ZipFile(fh) as zf:
                 infos = zf.infolist()
                 names = sorted(info.filename for info in infos)
-                if names != sorted(bound):
-                    raise _Refused(f"members {names!r}, expected {sorted(bound)!r}")
+                if names not in (sorted(bound), sorted((_BETAS, _META))):
+                    raise _Refused(f"members {names!r}, expected {sorted((_BETAS, _META))!r} "
+                                   f"(and {_UNUSABLE!r})")
                 for info in infos:
                     # Only glmeeg's own layout: stored members (compressed ones, deflate bombs
                     # included, are never inflated) no larger than the shape implies.
@@ -232,6 +244,23 @@ class FitCache:
                                        f"{' (Fortran order)' if fortran else ''}, expected {_DTYPE} of "
                                        f"shape {shape}")
                     data = _read_exactly(b, n_bytes, _BETAS)
+                count = meta["unusable_points"]
+                if (_UNUSABLE in names) != (count > 0):
+                    raise _Refused(f"{_UNUSABLE} {'present' if _UNUSABLE in names else 'absent'}, "
+                                   f"with {count} unusable points in the metadata")
+                unusable = np.empty(0, dtype=np.int64)
+                if count:
+                    with zf.open(_UNUSABLE) as u:
+                        ushape, fortran, udtype = _npy_header(u, _UNUSABLE)
+                        if udtype != np.dtype(_INDEX) or ushape != (count,):
+                            raise _Refused(f"{_UNUSABLE}: {udtype.str} array of shape {ushape}, "
+                                           f"expected {_INDEX} of shape ({count},)")
+                        raw_index = _read_exactly(u, 8 * count, _UNUSABLE)
+                    if hashlib.sha256(raw_index).hexdigest() != meta["unusable_sha256"]:
+                        raise _Refused("digest mismatch of the unusable points")
+                    unusable = np.frombuffer(raw_index, dtype=_INDEX).astype(np.int64)
+                    if unusable[0] < 0 or unusable[-1] >= shape[1] or np.any(np.diff(unusable) <= 0):
+                        raise _Refused("unusable points out of range or out of order")
         if hashlib.sha256(data).hexdigest() != meta["sha256"]:
             raise _Refused("digest mismatch")
         betas = np.frombuffer(data, dtype=_DTYPE).reshape(shape)
@@ -240,7 +269,7 @@ class FitCache:
             raise _Refused(f"{betas.size - np.count_nonzero(finite)} betas are NaN or infinite")
         return SubjectFit(subject=subject, betas=betas.astype(np.float64),  # native, writable copy
                           df_resid=meta["df_resid"], robust_iterations_max=meta["robust_iterations_max"],
-                          robust_unconverged_points=meta["robust_unconverged_points"])
+                          robust_unconverged_points=meta["robust_unconverged_points"], unusable=unusable)
 
     def store(self, key: str, fit: SubjectFit) -> Path:
         """Write one fit atomically (temporary file in the folder, fsync, then rename).
@@ -255,6 +284,12 @@ class FitCache:
                 "robust_unconverged_points": fit.robust_unconverged_points,
                 "sha256": hashlib.sha256(betas.data).hexdigest(), "shape": list(betas.shape),
                 "dtype": _DTYPE}
+        unusable = np.ascontiguousarray(fit.unusable, dtype=_INDEX)
+        meta["unusable_points"] = int(unusable.size)
+        meta["unusable_sha256"] = hashlib.sha256(unusable.data).hexdigest() if unusable.size else None
+        members = {"betas": betas, "meta": np.array(json.dumps(meta, sort_keys=True))}
+        if unusable.size:
+            members["unusable"] = unusable
         tmp = None
         try:
             self.folder.mkdir(parents=True, exist_ok=True)
@@ -264,7 +299,7 @@ class FitCache:
             os.fchmod(fd, 0o666 & ~umask)  # mkstemp makes the file private; give it the usual mode
             with os.fdopen(fd, "wb") as fh:
                 # np.savez stores its members uncompressed, the only layout load accepts.
-                np.savez(fh, betas=betas, meta=np.array(json.dumps(meta, sort_keys=True)))
+                np.savez(fh, **members)
                 fh.flush()
                 os.fsync(fh.fileno())
             os.replace(tmp, path)

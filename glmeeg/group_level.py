@@ -20,7 +20,7 @@ import scipy.stats
 
 from .effect_sizes import noncentrality_interval_f, noncentrality_interval_t
 from .errors import ModelError
-from .subject_level import fit_ols
+from .subject_level import fit_ols, unusable_variance
 
 __all__ = ["GroupStatistics", "group_arrays", "group_test", "group_test_in_chunks", "p_values",
            "unusable_variance",
@@ -99,28 +99,6 @@ def p_values(statistic: np.ndarray, kind: str, df: tuple[float, float], *,
         if alternative == "greater":
             return t.sf(statistic, df[1])
         return t.cdf(statistic, df[1])
-
-
-def unusable_variance(rss: np.ndarray, total: np.ndarray, n: int) -> np.ndarray:
-    """Points whose residual sum of squares cannot carry a statistic.
-
-    ``rss`` is not finite, is zero or has underflowed (not above the smallest normal float64),
-    or is within the rounding error of a sum of ``n`` squares of the data themselves:
-    ``rss <= n ε total`` with ``total`` the (uncentred) sum of squares of the estimates at the
-    point and ε the float64 machine epsilon. There the variance holds no digit of the data,
-    and a t or F from it is a number, not a result (data scaled by 1e-170, or estimates equal
-    to rounding): such points get a non-finite statistic and are left out of every correction,
-    like points of zero variance.
-
-    References
-    ----------
-    .. [1] Higham, N. J. (2002). Accuracy and Stability of Numerical Algorithms (2nd ed.),
-       section 4.2 (the error bound of recursive summation). SIAM.
-    """
-    fi = np.finfo(np.float64)
-    with np.errstate(invalid="ignore", over="ignore"):
-        usable = np.isfinite(rss) & (rss > fi.tiny) & (rss > n * fi.eps * np.asarray(total))
-    return ~usable
 
 
 def group_arrays(estimates, design, contrast) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

@@ -224,7 +224,14 @@ def _scheduler_security(distributed, scheduler: str):
     except (ValueError, TypeError, ImportError) as e:  # bad TLS version; OpenSSL before 1.1.1
         raise ExecutionError(f"--scheduler {scheduler}: Dask's TLS configuration is not usable "
                              f"({_first_line(e)})") from None
-    scheme = parse_address(scheduler)[0].lower()
+    try:
+        scheme = parse_address(scheduler)[0].lower()
+    except (ValueError, TypeError) as e:
+        raise ExecutionError(f"--scheduler {scheduler}: not a scheduler address ({_first_line(e)}); "
+                             "expected e.g. tcp://10.0.0.5:8786 or tls://10.0.0.5:8786") from None
+    if scheme not in ("tcp", "tls", "ws", "wss"):
+        raise ExecutionError(f"--scheduler {scheduler}: unknown protocol {scheme!r}; expected "
+                             "tcp://, tls://, ws:// or wss:// followed by host:port")
     encrypted = scheme in ("tls", "wss")  # Dask's two comms that take the TLS credentials
     if encrypted and not (security.tls_ca_file and security.tls_client_cert):
         raise ExecutionError(f"--scheduler {scheduler}: a {scheme}:// scheduler needs the client's "

@@ -252,6 +252,7 @@ class SubjectEstimates:
     estimates: np.ndarray
     rows: dict[str, slice]
     summaries: tuple[SubjectSummary, ...]
+    warnings: tuple[str, ...] = ()
 
 
 def subject_jobs(plan: AnalysisPlan, *, hashes: dict[str, str] | None = None) -> list[SubjectJob]:
@@ -376,6 +377,7 @@ def fit_subjects(plan: AnalysisPlan, *, backend: Backend | None = None, cache: F
 
     def keep(i, fit) -> None:
         out[i] = small_product(C, fit.betas)
+        out[i][:, fit.unusable] = np.nan  # no estimate where the data are constant or fitted exactly
         facts[i] = dataclasses.replace(fit, betas=np.empty((0, 0)))  # the betas are not needed again
 
     for i, job in enumerate(jobs):
@@ -409,8 +411,12 @@ def fit_subjects(plan: AnalysisPlan, *, backend: Backend | None = None, cache: F
                                         trials_listed=len(st.subject_trials(job.subject)),
                                         trials_used=int(X.kept.sum()), rows_dropped=X.n_dropped,
                                         df_resid=fit.df_resid, condition_number=X.condition_number,
-                                        **fit.summary_fields()))
-    return SubjectEstimates(subjects=st.subject_ids, estimates=out, rows=rows, summaries=tuple(summaries))
+                                        unusable_points=int(fit.unusable.size), **fit.summary_fields()))
+    notes = tuple(f"subject {s.subject}: at {s.unusable_points} of {st.axes.n_points} points the data are "
+                  "constant or fitted exactly up to rounding; those points get no estimate and no "
+                  "group statistic" for s in summaries if s.unusable_points)
+    return SubjectEstimates(subjects=st.subject_ids, estimates=out, rows=rows, summaries=tuple(summaries),
+                            warnings=notes)
 
 
 def _trial_weights(plan: AnalysisPlan, trials: pd.DataFrame, X: DesignMatrix, subject: str):
@@ -677,7 +683,7 @@ def run_analysis(design: str | Path | AnalysisPlan, *, progress: Progress | None
     first = plan.study.subject_ids[0]
     return RunResult(design=plan.spec.model_dump(mode="json"), subject_formula=plan.subject_design.formula,
                      subject_columns=plan.subject_design.column_names, subjects=est.summaries,
-                     tests=tests, warnings=plan.warnings, provenance=prov,
+                     tests=tests, warnings=tuple(plan.warnings) + est.warnings, provenance=prov,
                      example_design_subject=first, example_design=plan.subject_matrices[first].matrix)
 
 

@@ -197,6 +197,8 @@ class SubjectSummary(_Frozen):
     condition_number: float
     robust_iterations_max: int | None = None
     robust_unconverged_points: int | None = None
+    # Points where the subject's data are constant or fitted exactly up to rounding (no estimate).
+    unusable_points: int = 0
 
 
 _ARRAYS = ("estimate", "standard_error", "statistic", "p", "p_corrected", "significant",
@@ -722,20 +724,45 @@ def load_result(path: str | Path) -> TestResult:
         raise GlmeegError(f"{path}: no saved glmeeg result here")
     try:
         # The file is opened here so that it is closed even when numpy cannot parse it.
-        with open(path, "rb") as fh, np.load(fh, allow_pickle=False) as z:
-            meta = json.loads(str(z["meta"]))
-            arrays = {k: z[k] for k in _ARRAYS}
-            arrays.update({k: z[k] for k in _OPTIONAL_ARRAYS if k in z.files})
-    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, AttributeError, TypeError) as e:
-        raise GlmeegError(f"{path}: not a glmeeg result file ({e or type(e).__name__})") from None
+        with open(path, "rb") as fh:
+            size = os.fstat(fh.fileno()).st_size
+            with zipfile.ZipFile(fh) as zf:
+                for info in zf.infolist():
+                    # glmeeg stores its members uncompressed: nothing is inflated, and no member
+                    # can claim more bytes than the file holds (a forged archive costs nothing).
+                    if info.compress_type != zipfile.ZIP_STORED or info.file_size > size:
+                        raise GlmeegError(f"{path}: not a glmeeg result file (member {info.filename!r} "
+                                          "is compressed or larger than the file)")
+            fh.seek(0)
+            with np.load(fh, allow_pickle=False) as z:
+                meta = json.loads(str(z["meta"]))
+                arrays = {k: z[k] for k in _ARRAYS}
+                arrays.update({k: z[k] for k in _OPTIONAL_ARRAYS if k in z.files})
+    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, AttributeError, TypeError,
+            RecursionError) as e:
+        if isinstance(e, GlmeegError):
+            raise
+        raise GlmeegError(f"{path}: not a glmeeg result file ({_first_line(e)})") from None
     if not isinstance(meta, dict):
         raise GlmeegError(f"{path}: not a glmeeg result file (settings are not a JSON object)")
     try:
-        return TestResult.model_validate({**meta, **arrays})
+        result = TestResult.model_validate({**meta, **arrays})
     except ValidationError as e:
         err = e.errors()[0]
         where = ".".join(map(str, err["loc"])) or "(top level)"
         raise GlmeegError(f"{path}: not a valid glmeeg result ({where}: {err['msg']})") from None
+    P = result.axes.n_points
+    for name in _MAPS:
+        value = getattr(result, name, None)
+        if value is not None and np.asarray(value).shape[-1:] != (P,):
+            raise GlmeegError(f"{path}: not a valid glmeeg result ({name} has shape "
+                              f"{np.asarray(value).shape}; the axes have {P} points)")
+    return result
+
+
+def _first_line(e: BaseException) -> str:
+    text = str(e).strip()
+    return text.splitlines()[0] if text else type(e).__name__
 
 
 class RunResult(_Frozen):
@@ -929,6 +956,7 @@ def load_netcdf(path: str | Path) -> TestResult:
         raise GlmeegError(f"{path}: not a valid glmeeg result ({where}: {err['msg']})") from None
 
 
+_MAX_RUN_SUMMARY = 64 * 2**20  # bytes of a run.json that is read at all
 RUN_LIST = "glmeeg run"  # run.json's ``written_by``: what marks a result folder as glmeeg's
 # First file of a folder being written, removed just before it is swapped in: what marks a
 # leftover folder as one of glmeeg's writes (with the writer's host and process).
@@ -1241,8 +1269,8 @@ def load_run_result(folder: str | Path) -> RunResult:
                          example_design_subject=meta.get("example_design_subject"),
                          example_design=(None if meta.get("example_design") is None
                                          else np.asarray(meta["example_design"], dtype=np.float64)))
-    except (ValueError, KeyError, TypeError) as e:  # pydantic's ValidationError is a ValueError
-        raise GlmeegError(f"{path}: unreadable run summary ({str(e).splitlines()[0]})") from None
+    except (ValueError, KeyError, TypeError, RecursionError) as e:  # pydantic's ValidationError is a ValueError
+        raise GlmeegError(f"{path}: unreadable run summary ({_first_line(e)})") from None
 
 
 def load_run(folder: str | Path) -> list[TestResult]:
@@ -1255,10 +1283,12 @@ def load_run(folder: str | Path) -> list[TestResult]:
     run = folder / "run.json"
     if not run.is_file():
         raise GlmeegError(f"{folder}: not a glmeeg result folder (no run.json or result.npz)")
+    if run.stat().st_size > _MAX_RUN_SUMMARY:
+        raise GlmeegError(f"{run}: unreadable run summary (larger than {_MAX_RUN_SUMMARY // 2**20} MiB)")
     try:
         names = json.loads(run.read_text())["tests"]
-    except (ValueError, KeyError, TypeError) as e:
-        raise GlmeegError(f"{run}: unreadable run summary ({e})") from None
+    except (ValueError, KeyError, TypeError, RecursionError) as e:
+        raise GlmeegError(f"{run}: unreadable run summary ({_first_line(e)})") from None
     if not isinstance(names, list) or not all(isinstance(n, str) and n not in ("", ".", "..")
                                               and Path(n).name == n for n in names):
         raise GlmeegError(f"{run}: unreadable run summary ('tests' must list the test folder names)")

@@ -44,6 +44,10 @@ def read_table(path: Path, *, sep: str, label: str, required: tuple[str, ...],
     if size > MAX_TABLE_BYTES:
         raise StudyError(f"{label}: {size / 2**20:.0f} MiB; tables of more than "
                          f"{MAX_TABLE_BYTES // 2**20} MiB are not read")
+    with open(path, "rb") as fh:
+        head = fh.read(4 * MAX_HEADER_CHARS + 4)  # UTF-8: at most 4 bytes a character
+    if b"\n" not in head and len(head) > 4 * MAX_HEADER_CHARS:
+        raise StudyError(f"{label}: the header row is longer than {MAX_HEADER_CHARS} characters")
     raw = path.read_bytes()
     try:
         text = raw.decode("utf-8-sig")
@@ -201,10 +205,13 @@ def _epoch_header(path: Path, subject: str, label: str) -> _Header:
         with open(path, "rb") as fh:
             version = np.lib.format.read_magic(fh)
             reader = readers.get(version)
-            if reader is None:  # a newer header layout: let numpy read it
-                arr = _open_epochs(path, subject, label)
-                return _Header(shape=tuple(arr.shape), dtype=arr.dtype)
+            if reader is None:  # numpy writes 1.0 or 2.0 for every plain float array
+                raise StudyError(f"subject {subject}: {label} is not a readable NumPy .npy "
+                                 f"array (format version {version[0]}.{version[1]}; expected "
+                                 "1.0 or 2.0, as numpy.save writes a plain float array)")
             shape, _, dtype = reader(fh)
+    except StudyError:
+        raise
     except (ValueError, OSError, EOFError) as e:
         raise StudyError(f"subject {subject}: {label} is not a readable NumPy .npy array "
                          f"({str(e).splitlines()[0] if str(e) else type(e).__name__})") from None

@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import hashlib
 import json
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import cached_property
 
 import numpy as np
@@ -23,9 +23,9 @@ from .errors import StudyError
 __all__ = ["SubjectJob", "SubjectFit", "run_subject_job", "job_memory", "FIT_FORMAT"]
 
 # Bumped whenever a change to the fitting code can change a fit's bits, or the cache entry's
-# layout changes (2: the entry carries its key, shape, dtype and SHA-256): old cache entries then
-# no longer match any key.
-FIT_FORMAT = 2
+# layout changes (2: the entry carries its key, shape, dtype and SHA-256; 3: and the points
+# whose estimates are unusable): old cache entries then no longer match any key.
+FIT_FORMAT = 3
 
 
 @dataclass(frozen=True)
@@ -97,6 +97,9 @@ class SubjectFit:
     df_resid: int
     robust_iterations_max: int | None = None
     robust_unconverged_points: int | None = None
+    # Points (sorted indices) where the data are constant or fitted exactly up to rounding:
+    # their estimates are numbers, not results (subject_level.unusable_variance).
+    unusable: np.ndarray = field(default_factory=lambda: np.empty(0, dtype=np.int64))
 
     def summary_fields(self) -> dict:
         if self.robust_iterations_max is None:
@@ -147,6 +150,11 @@ def run_subject_job(_shared, job: SubjectJob) -> SubjectFit:
         fit = fit_ols(X[keep] * root[:, None], np.asarray(Y[keep], dtype=np.float64) * root[:, None])
     else:
         fit = fit_ols(X, Y)
+    if job.robust is not None:
+        # Constant data at a point: the robust scale is zero and the estimates exact numbers.
+        unusable = np.flatnonzero(np.max(Y, axis=0) == np.min(Y, axis=0))
+    else:
+        unusable = np.flatnonzero(fit.unusable_points())
     bad = ~np.isfinite(fit.betas).all(axis=0)
     if bad.any():
         cols = np.flatnonzero(bad)[:1000]
@@ -156,4 +164,4 @@ def run_subject_job(_shared, job: SubjectJob) -> SubjectFit:
                          "remove those epochs from the trials table or repair the data")
     del Y
     return SubjectFit(subject=job.subject, betas=np.ascontiguousarray(fit.betas, dtype=np.float64),
-                      df_resid=int(fit.df_resid), **robust_info)
+                      df_resid=int(fit.df_resid), unusable=unusable.astype(np.int64), **robust_info)

@@ -21,7 +21,7 @@ import scipy.linalg
 
 from .errors import ModelError
 
-__all__ = ["OLSFit", "fit_ols", "small_product", "BLOCK_POINTS"]
+__all__ = ["OLSFit", "fit_ols", "small_product", "unusable_variance", "BLOCK_POINTS"]
 
 # Points per block of work for a thread: the block's float64 accumulators (columns + 2 rows of
 # BLOCK_POINTS values) stay in L1/L2 while the trials stream past.
@@ -29,6 +29,28 @@ BLOCK_POINTS = 512
 # Where ||y||^2 - ||Q^T y||^2 keeps less than this share of ||y||^2, residuals are formed
 # explicitly (the difference would lose more than three of sixteen digits).
 _CANCELLATION = 1e-3
+
+
+def unusable_variance(rss: np.ndarray, total: np.ndarray, n: int) -> np.ndarray:
+    """Points whose residual sum of squares cannot carry a statistic.
+
+    ``rss`` is not finite, is zero or has underflowed (not above the smallest normal float64),
+    or is within the rounding error of a sum of ``n`` squares of the data themselves:
+    ``rss <= n ε total`` with ``total`` the sum of squares of the data at the point and ε the
+    float64 machine epsilon. There the variance holds no digit of the data, and a t or F from
+    it, or an estimate from an exact fit of constant data, is a number, not a result (data
+    scaled by 1e-170, constant recordings, estimates equal up to rounding): such points get no
+    statistic and are left out of every correction, like points of zero variance.
+
+    References
+    ----------
+    .. [1] Higham, N. J. (2002). Accuracy and Stability of Numerical Algorithms (2nd ed.),
+       section 4.2 (the error bound of recursive summation). SIAM.
+    """
+    fi = np.finfo(np.float64)
+    with np.errstate(invalid="ignore", over="ignore"):
+        usable = np.isfinite(rss) & (rss > fi.tiny) & (rss > n * fi.eps * np.asarray(total))
+    return ~usable
 
 
 @dataclass(frozen=True)
@@ -46,12 +68,23 @@ class OLSFit:
     xtx_inv : numpy.ndarray
         ``(n_columns, n_columns)`` inverse of the cross-product matrix of the design, so that the
         covariance of ``c @ betas`` at a point is ``c @ xtx_inv @ c * residual_variance``.
+    total_sum_squares : numpy.ndarray or None
+        ``(n_points,)`` sum of squares of the data the residuals are compared with (about the
+        first row when the design has a constant column, else about zero); see
+        :func:`unusable_variance`.
     """
 
     betas: np.ndarray
     residual_variance: np.ndarray
     df_resid: int
     xtx_inv: np.ndarray
+    total_sum_squares: np.ndarray | None = None
+
+    def unusable_points(self) -> np.ndarray:
+        """Points whose residuals hold no digit of the data (:func:`unusable_variance`): the
+        data are constant there, or fitted exactly up to rounding."""
+        n = self.df_resid + self.betas.shape[0]
+        return unusable_variance(self.residual_variance * self.df_resid, self.total_sum_squares, n)
 
     def contrast(self, c: np.ndarray) -> np.ndarray:
         """Contrast estimates ``c @ betas``: ``(rows, n_points)`` for a ``(rows, n_columns)`` c."""
@@ -156,4 +189,5 @@ def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS) -
         betas = small_product(to_betas, proj)
     xtx_inv = to_betas @ to_betas.T
     df = n - p
-    return OLSFit(betas=betas, residual_variance=ss / df, df_resid=df, xtx_inv=xtx_inv)
+    return OLSFit(betas=betas, residual_variance=ss / df, df_resid=df, xtx_inv=xtx_inv,
+                  total_sum_squares=sq)

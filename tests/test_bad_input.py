@@ -305,6 +305,9 @@ _CASES = [
     ("inf-in-data", _epochs("s01", _nan(np.inf)), ["subject s01", "Inf", "epoch(s) 7"], {}),
     ("two-d-array", _epochs("s02", lambda a: a[:, :, 0]), ["subject s02", "2 dimensions"], {}),
     ("five-d-array", _epochs("s02", lambda a: a[:, :, None, None, :]), ["subject s02", "5 dimensions"], {}),
+    ("npy-version-3", lambda root, design: (root / "epochs" / "s02.npy").write_bytes(
+        b"\x93NUMPY\x03\x00" + (2**31).to_bytes(4, "little") + b" " * 100),
+     ["subject s02", "format version 3.0"], {}),
     ("object-array", _object_array, ["subject s01", "epochs/s01.npy", "objects"], {}),
     ("int64-array", _epochs("s02", lambda a: (a * 10).astype(np.int64)), ["subject s02", "int64", "float"], {}),
     ("float16-array", _epochs("s02", lambda a: a.astype(np.float16)), ["subject s02", "float16"], {}),
@@ -555,6 +558,16 @@ def _bad_kind(folder: Path) -> None:
         np.savez(fh, **arrays)
 
 
+def _compressed_npz(folder: Path) -> None:
+    """The same arrays, deflated: glmeeg stores its members uncompressed, so a deflated member
+    (a bomb, say) is refused before anything is inflated."""
+    path = folder / "b-vs-a" / "result.npz"
+    with np.load(path) as z:
+        arrays = dict(z)
+    with open(path, "wb") as fh:
+        np.savez_compressed(fh, **arrays)
+
+
 def _write(rel: str, content: bytes):
     return lambda folder: (folder / rel).write_bytes(content)
 
@@ -571,6 +584,13 @@ def _write(rel: str, content: bytes):
     pytest.param(_write("run.json", b"\xff\xfe{"), ["run.json", "unreadable"], id="run-json-not-utf8"),
     pytest.param(lambda folder: shutil.rmtree(folder / "b-vs-a"), ["b-vs-a", "no saved glmeeg result"],
                  id="test-folder-missing"),
+    pytest.param(_rewrite_npz(statistic=np.zeros(3)), ["result.npz", "statistic has shape (3,)"],
+                 id="npz-map-truncated"),
+    pytest.param(_rewrite_npz(meta=np.array("[" * 100_000 + "]" * 100_000)), ["result.npz", "not a glmeeg result"],
+                 id="meta-deeply-nested"),
+    pytest.param(_compressed_npz, ["result.npz", "compressed"], id="npz-compressed"),
+    pytest.param(_write("run.json", b"[" * 200_000 + b"]" * 200_000), ["run.json", "unreadable"],
+                 id="run-json-deeply-nested"),
 ])
 def test_show_on_a_damaged_result_is_one_line(saved_run, tmp_path, mutate, fragments):
     folder = tmp_path / "copy"
@@ -578,3 +598,11 @@ def test_show_on_a_damaged_result_is_one_line(saved_run, tmp_path, mutate, fragm
     mutate(folder)
     result = CliRunner().invoke(app, ["show", str(folder)])
     assert_clean_error(result, fragments)
+
+
+def test_an_unknown_scheduler_protocol_is_one_line(tmp_path):
+    design = write_study(tmp_path / "study", **SMALL)
+    result = CliRunner().invoke(app, ["run", str(design), "--out", str(tmp_path / "out"),
+                                      "--scheduler", "foo://x"])
+    assert_clean_error(result, ["--scheduler foo://x", "unknown protocol"])
+    assert not (tmp_path / "out").exists()

@@ -31,7 +31,7 @@ from conftest import write_study
 from glmeeg.cache import CACHE_FOLDER, FitCache
 from glmeeg.cli import app
 from glmeeg.results import load_run
-from glmeeg.subject_jobs import SubjectFit
+from glmeeg.subject_jobs import FIT_FORMAT, SubjectFit
 
 # 6 subjects x 12 trials x 3 channels x 5 times: every run takes about a second.
 SMALL = dict(n_subjects=6, n_trials=12, n_channels=3, n_times=5, seed=7)
@@ -247,7 +247,7 @@ FORGERIES = {
     "bad-code-point": (_bad_code_point, "UnicodeDecodeError"),
     "bad-digest-text": (_meta(sha256="x" * 64), "not a SHA-256"),
     "wrong-key": (_meta(key="0" * 64), "metadata key"),
-    "old-format": (_meta(format=1), "metadata format 1, expected 2"),
+    "old-format": (_meta(format=FIT_FORMAT - 1), f"metadata format {FIT_FORMAT - 1}, expected {FIT_FORMAT}"),
     "other-subject": (_other_subjects_entry, "metadata subject 's04', expected 's03'"),
     "not-a-zip": (_not_a_zip, "BadZipFile"),
     "empty-file": (_empty, "BadZipFile"),
@@ -385,9 +385,25 @@ def test_store_and_load_round_trip_bitwise(tmp_path, caplog):
         assert sorted(zf.namelist()) == ["betas.npy", "meta.npy"]
         assert {i.compress_type for i in zf.infolist()} == {zipfile.ZIP_STORED}
     meta = _read_entry(cache.folder / f"{key}.npz")[1]
-    assert meta == {"format": 2, "subject": "s01", "key": key, "df_resid": 17, "robust_iterations_max": 9,
-                    "robust_unconverged_points": 0, "shape": [3, 40], "dtype": "<f8",
-                    "sha256": hashlib.sha256(betas.astype("<f8").tobytes()).hexdigest()}
+    assert meta == {"format": FIT_FORMAT, "subject": "s01", "key": key, "df_resid": 17,
+                    "robust_iterations_max": 9, "robust_unconverged_points": 0, "shape": [3, 40],
+                    "dtype": "<f8", "sha256": hashlib.sha256(betas.astype("<f8").tobytes()).hexdigest(),
+                    "unusable_points": 0, "unusable_sha256": None}
+    # Points without an estimate travel as a third member, with their own digest.
+    cache.store(key, SubjectFit(subject="s01", betas=betas, df_resid=17, unusable=np.array([2, 7, 39])))
+    fit = cache.load(key, subject="s01", shape=(3, 40))
+    assert fit.unusable.tolist() == [2, 7, 39]
+    with zipfile.ZipFile(cache.folder / f"{key}.npz") as zf:
+        assert sorted(zf.namelist()) == ["betas.npy", "meta.npy", "unusable.npy"]
+    meta = _read_entry(cache.folder / f"{key}.npz")[1]
+    assert meta["unusable_points"] == 3
+    assert meta["unusable_sha256"] == hashlib.sha256(np.array([2, 7, 39], dtype="<i8").tobytes()).hexdigest()
+    # An entry whose metadata and member disagree is refitted.
+    _write_entry(cache.folder / f"{key}.npz", betas, meta)  # the member left out
+    with caplog.at_level(logging.WARNING, logger="glmeeg"):
+        assert cache.load(key, subject="s01", shape=(3, 40)) is None
+    assert "unusable.npy absent" in caplog.records[-1].getMessage()
+    caplog.clear()
     # Least squares: no robust facts.
     cache.store(key, SubjectFit(subject="s01", betas=betas, df_resid=0))
     fit = cache.load(key, subject="s01", shape=(3, 40))

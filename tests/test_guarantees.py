@@ -393,3 +393,46 @@ def test_a_long_note_on_a_terminal_stays_one_line():
     finally:
         configure_logging(io.StringIO())
     assert stream.getvalue() == f"glmeeg: {note}\n"
+
+
+# --- numbers that are not results ---------------------------------------------------------------
+
+def _numbers_study(root: Path, transform) -> Path:
+    design = write_study(root, n_subjects=8, n_trials=12, n_channels=2, n_times=4, seed=5,
+                         tests='[[test]]\nname = "b"\nsubject_contrast = "condition[T.b]"\n'
+                               'correction = "max"\npermutations = 500\nseed = 1\n')
+    for f in (root / "epochs").glob("*.npy"):
+        np.save(f, transform(np.load(f).astype(np.float64)))
+    return design
+
+
+@pytest.mark.parametrize("transform", [
+    pytest.param(lambda a: np.full_like(a, 5.0), id="constant-5"),
+    pytest.param(lambda a: np.full_like(a, 1e6), id="constant-1e6"),
+    pytest.param(lambda a: a.astype(np.float64) * 1e-170, id="scaled-1e-170"),
+])
+def test_data_without_a_digit_of_signal_give_no_statistic(tmp_path, transform):
+    """Constant recordings fit exactly: the subjects' contrast estimates are rounding residue
+    (about 1e-16), and a t of them would be a number, not a result. Data scaled by 1e-170
+    have variances that underflow. Neither gives a statistic, a p-value or a significant point."""
+    from glmeeg.results import load_result
+
+    design = _numbers_study(tmp_path / "s", transform)
+    out = tmp_path / "out"
+    result = CliRunner().invoke(app, ["run", str(design), "--out", str(out), "--no-report"])
+    assert result.exit_code == 0, result.output
+    t = load_result(out / "b")
+    assert not np.isfinite(t.statistic).any() and not np.isfinite(t.p).any()
+    assert not t.significant.any()
+    assert "not finite at 8 points" in result.stdout
+
+
+def test_unusable_variance_rule():
+    """rss <= n eps total (the rounding bound of a sum of n squares; Higham 2002, section 4.2),
+    zero, underflowed or non-finite: unusable; anything above: usable."""
+    from glmeeg.subject_level import unusable_variance
+
+    eps, tiny = np.finfo(float).eps, np.finfo(float).tiny
+    total = np.array([1.0, 1.0, 1.0, 1.0, 1e-300, 1.0])
+    rss = np.array([0.0, 10 * eps * 0.99, 10 * eps * 1.01, np.nan, tiny / 2, 1e-3])
+    assert unusable_variance(rss, total, 10).tolist() == [True, True, False, True, True, False]
