@@ -40,7 +40,7 @@ TARGET = 1.7
 
 def problem():
     from glmeeg.inference.graph import map_graph
-    from glmeeg.neighbours import sensor_graph
+    from glmeeg.sensors.neighbours import sensor_graph
 
     sg = sensor_graph(pd.DataFrame({"name": CHANNELS_64}))
     shape = (64, N_FREQS, N_TIMES)
@@ -78,7 +78,7 @@ def on_cluster(n_workers, Y, graph, permutations):
 
 def _small_graph():
     from glmeeg.inference.graph import map_graph
-    from glmeeg.neighbours import sensor_graph
+    from glmeeg.sensors.neighbours import sensor_graph
 
     sg = sensor_graph(pd.DataFrame({"name": CHANNELS_64}))
     return map_graph(sg.adjacency(), (64, 1, 31))

@@ -108,7 +108,7 @@ BASELINE = textwrap.dedent("""
 """)
 FIT = textwrap.dedent("""
     import sys, time
-    from glmeeg.cache import FitCache
+    from glmeeg.subject_level.cache import FitCache
     from glmeeg.pipeline import fit_subjects, plan_analysis
     from glmeeg.results import provenance
     plan = plan_analysis(sys.argv[1])

@@ -5,7 +5,7 @@ Problem: a one-sample group test of 30 subjects x 64 channels x 500 samples (32,
 5,000 random sign-flips (``glmeeg.inference.permutation.permutation_test``). Data: white noise
 smoothed in time (Gaussian, SD 5 samples) and mixed across neighbouring sensors, fixed seed (no
 effect: every resampled map is noise, as most of them are in a real test). Channels: 64 names of
-the 10-10 system; their neighbour graph comes from ``glmeeg.neighbours.sensor_graph`` on the
+the 10-10 system; their neighbour graph comes from ``glmeeg.sensors.neighbours.sensor_graph`` on the
 standard positions of the names, times the path over samples.
 
 Targets on a 2-core machine: TFCE <= 30 s, cluster mass <= 10 s.
@@ -64,7 +64,7 @@ def main() -> None:
     from glmeeg.inference.permutation import (_Engine, cluster_forming_threshold, permutation_test,
                                               resamplings)
     from glmeeg.inference.tfce import max_tfce
-    from glmeeg.neighbours import sensor_graph
+    from glmeeg.sensors.neighbours import sensor_graph
 
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--permutations", type=int, default=5000)

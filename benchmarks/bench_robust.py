@@ -66,7 +66,7 @@ def main() -> None:
     ap.add_argument("--seed", type=int, default=12345)
     args = ap.parse_args()
 
-    from glmeeg.robust import fit_robust
+    from glmeeg.subject_level.robust import fit_robust
     from glmeeg.subject_level import fit_ols
 
     rng = np.random.default_rng(args.seed)

@@ -39,7 +39,7 @@ def main() -> None:
     from glmeeg.inference import permutation as perm
     from glmeeg.inference.corrections import TFCE, ClusterMass, MaxStatistic
     from glmeeg.inference.graph import graph_arrays, points_graph
-    from glmeeg.neighbours import sensor_graph
+    from glmeeg.sensors.neighbours import sensor_graph
 
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--permutations", type=int, default=5000)

@@ -1,10 +1,10 @@
 """Simulated power benchmark: 5 sample sizes x 200 simulated studies, each with a cluster-mass
 permutation test.
 
-Problem: the demo study (``glmeeg.simulate.write_demo_study``: 28 volunteers, 32 channels x 250
+Problem: the demo study (``glmeeg.demo.write_demo_study``: 28 volunteers, 32 channels x 250
 samples = 8,000 points), written to a temporary folder. Its first question -- urgency high vs
 low, a one-sample t over volunteers -- is run once as the pilot, with a cluster-mass correction
-of 500 sign-flips, saved and loaded back. Then ``glmeeg.simulated_power.simulate_power``
+of 500 sign-flips, saved and loaded back. Then ``glmeeg.planning.simulated.simulate_power``
 simulates 200 new studies at each of n = 12, 16, 24, 32, 40 from that result, each analysed
 with the same cluster-mass test with 500 sign-flips (``permutations = 500``: enough for a power
 estimate, Boos & Zhang 2000; the pilot's neighbour graph from its design).
@@ -48,8 +48,8 @@ seed = 1
 def main() -> None:
     import glmeeg
     from glmeeg.inference.permutation import permutation_test
-    from glmeeg.simulate import write_demo_study
-    from glmeeg.simulated_power import simulate_power
+    from glmeeg.demo import write_demo_study
+    from glmeeg.planning.simulated import simulate_power
 
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--simulations", type=int, default=200)

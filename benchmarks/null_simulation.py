@@ -8,7 +8,7 @@ one-sample group test (does the mean differ from 0?) of smooth noise:
 * noise smooth across the scalp (correlation exp(-d^2 / 0.6^2) between sensors at chord
   distance d on the unit sphere, plus a 5 % independent share, as the demo's noise) and in
   time (Gaussian kernel, SD 3 samples), scaled to unit variance at every point;
-* neighbour graph of the points from ``glmeeg.neighbours.sensor_graph`` on the standard
+* neighbour graph of the points from ``glmeeg.sensors.neighbours.sensor_graph`` on the standard
   positions of the channel names, times the path over samples;
 * max-statistic, cluster-mass and TFCE corrections (glmeeg defaults: cluster-forming threshold
   at parametric p = 0.05 two-sided, E = 0.5, H = 2), ``--resamplings`` random sign-flips per
@@ -47,9 +47,9 @@ from glmeeg.group_level import group_test
 from glmeeg.inference.corrections import TFCE, ClusterMass, MaxStatistic
 from glmeeg.inference.graph import graph_arrays, points_graph
 from glmeeg.inference.permutation import permutation_test
-from glmeeg.neighbours import sensor_graph
+from glmeeg.sensors.neighbours import sensor_graph
 from glmeeg.sensors import standard_positions
-from glmeeg.simulate import CHANNELS
+from glmeeg.demo import CHANNELS
 
 ALPHA = 0.05
 N_TIMES = 100

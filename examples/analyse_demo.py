@@ -9,7 +9,7 @@ import sys
 from pathlib import Path
 
 import glmeeg
-from glmeeg.simulate import write_demo_study
+from glmeeg.demo import write_demo_study
 
 folder = Path(sys.argv[1] if len(sys.argv) > 1 else "glmeeg-demo-script")
 design = write_demo_study(folder, n_subjects=28)

@@ -16,14 +16,14 @@ _PUBLIC = {
     "GroupStatistics": "group_level", "group_test": "group_level",
     "Bonferroni": "inference", "FalseDiscoveryRate": "inference", "Holm": "inference",
     "NoCorrection": "inference", "adjust_p": "inference",
-    "PowerSolution": "power", "power_curve": "power", "solve_power": "power",
+    "PowerSolution": "planning", "power_curve": "planning", "solve_power": "planning",
     "AnalysisPlan": "pipeline", "fit_subjects": "pipeline", "plan_analysis": "pipeline",
     "run_analysis": "pipeline", "test_group": "pipeline",
     "RunResult": "results", "TestResult": "results", "load_result": "results",
     "load_run": "results", "write_run": "results",
     "DesignSpec": "spec", "load_design": "spec", "Study": "study", "read_study": "study",
-    "RobustFit": "robust", "fit_robust": "robust", "SimulatedPower": "simulated_power",
-    "simulate_power": "simulated_power", "OLSFit": "subject_level", "fit_ols": "subject_level",
+    "RobustFit": "subject_level", "fit_robust": "subject_level", "SimulatedPower": "planning",
+    "simulate_power": "planning", "OLSFit": "subject_level", "fit_ols": "subject_level",
 }
 
 

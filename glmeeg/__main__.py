@@ -1,3 +1,3 @@
-from ._console import main
+from .cli import main
 
 main()

@@ -5,7 +5,7 @@ import scipy.stats
 from typer.testing import CliRunner
 
 from conftest import write_study
-from glmeeg.assumptions import group_checks, outlying_trials, robust_z
+from glmeeg.group_level.assumptions import group_checks, outlying_trials, robust_z
 from glmeeg.cli import app
 
 
@@ -55,12 +55,12 @@ def test_robust_z_of_a_constant_is_zero():
 
 def test_check_finds_the_demo_artefact_trials(tmp_path):
     # The demo plants 50-150 µV drifts or spikes on 1-4 channels in 1-3 % of the kept trials and
-    # blinks in 3-12 % (glmeeg.simulate), and lists them in planted_artefacts.csv, which the
+    # blinks in 3-12 % (glmeeg.demo), and lists them in planted_artefacts.csv, which the
     # analysis never reads.
     import pandas as pd
 
     import glmeeg
-    from glmeeg.simulate import write_demo_study
+    from glmeeg.demo import write_demo_study
 
     design = write_demo_study(tmp_path / "demo", n_subjects=6, seed=3)
     plan = glmeeg.plan_analysis(design)

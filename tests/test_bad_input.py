@@ -484,7 +484,7 @@ def test_progress_does_not_glue_onto_the_error_line(tmp_path):
 
 def test_error_on_a_terminal_starts_a_clean_line(tmp_path, monkeypatch):
     """On a terminal the progress bars are stopped first, so the error is what stays visible."""
-    import glmeeg.cli as cli
+    import glmeeg.cli.commands as cli
 
     monkeypatch.setattr(cli, "sys", SimpleNamespace(stderr=SimpleNamespace(isatty=lambda: True)))
     root = tmp_path / "study"

@@ -6,7 +6,7 @@ import scipy.stats
 
 import glmeeg
 from conftest import write_study
-from glmeeg.bootstrap import bootstrap_interval
+from glmeeg.group_level.bootstrap import bootstrap_interval
 
 
 @pytest.mark.parametrize(("method", "scipy_method"), [("percentile", "percentile"), ("bca", "BCa")])

@@ -28,10 +28,10 @@ from numpy.lib import format as npy_format
 from typer.testing import CliRunner
 
 from conftest import write_study
-from glmeeg.cache import CACHE_FOLDER, FitCache
+from glmeeg.subject_level.cache import CACHE_FOLDER, FitCache
 from glmeeg.cli import app
 from glmeeg.results import load_run
-from glmeeg.subject_jobs import FIT_FORMAT, SubjectFit
+from glmeeg.subject_level.jobs import FIT_FORMAT, SubjectFit
 
 # 6 subjects x 12 trials x 3 channels x 5 times: every run takes about a second.
 SMALL = dict(n_subjects=6, n_trials=12, n_channels=3, n_times=5, seed=7)

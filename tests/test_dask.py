@@ -30,7 +30,7 @@ from glmeeg.cli import app
 from glmeeg.errors import ExecutionError
 from glmeeg.pipeline import run_analysis
 from glmeeg.results import load_run
-from glmeeg.simulate import write_demo_study
+from glmeeg.demo import write_demo_study
 
 # Two clusters at once (the module's and one a test starts) share the default HTTP port; Dask
 # moves the second one elsewhere and says so.

@@ -6,7 +6,7 @@ import scipy.optimize
 import scipy.stats
 
 import glmeeg
-from glmeeg.effect_sizes import noncentrality_interval_f, noncentrality_interval_t, size_label
+from glmeeg.group_level.effect_sizes import noncentrality_interval_f, noncentrality_interval_t, size_label
 
 
 def _invert(cdf, target, lo, hi):

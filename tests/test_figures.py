@@ -17,7 +17,7 @@ matplotlib = pytest.importorskip("matplotlib")
 from matplotlib.image import imread  # noqa: E402
 
 import glmeeg  # noqa: E402
-from glmeeg import figures  # noqa: E402
+from glmeeg.report import figures  # noqa: E402
 from glmeeg.errors import GlmeegError  # noqa: E402
 
 from conftest import write_study  # noqa: E402

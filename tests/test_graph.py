@@ -18,7 +18,7 @@ from scipy.sparse.csgraph import connected_components
 
 from glmeeg.axes import Axes
 from glmeeg.inference.graph import graph_arrays, points_graph
-from glmeeg.neighbours import neighbours_from_positions
+from glmeeg.sensors.neighbours import neighbours_from_positions
 from glmeeg.sensors import standard_positions
 
 DEMO32 = ("Fp1 Fp2 AF3 AF4 F7 F3 Fz F4 F8 FC5 FC1 FC2 FC6 T7 C3 Cz C4 T8 CP5 CP1 CP2 CP6 "

@@ -10,7 +10,7 @@ import glmeeg
 from conftest import write_study
 from glmeeg.cli import app
 from glmeeg.errors import ModelError
-from glmeeg.group_robust import trimmed_test, welch_test, winsorized_normal_sd
+from glmeeg.group_level.robust import trimmed_test, welch_test, winsorized_normal_sd
 
 RNG_SEED = 17
 

@@ -22,7 +22,7 @@ import glmeeg
 from conftest import write_study
 from glmeeg.cli import app
 from glmeeg.errors import ModelError
-from glmeeg.group_robust import trimmed_test, welch_test
+from glmeeg.group_level.robust import trimmed_test, welch_test
 from glmeeg.inference import permutation as perm
 from glmeeg.inference import robust_resampling as rr
 from glmeeg.inference.corrections import TFCE, ClusterMass, MaxStatistic

@@ -310,7 +310,7 @@ def importer(name, *args, **kwargs):
     return real_import(name, *args, **kwargs)
 builtins.__import__ = importer
 sys.argv = ["glmeeg", "--version"]
-from glmeeg._console import main
+from glmeeg.cli import main
 main()
 """
 

@@ -6,7 +6,7 @@ import pytest
 
 import glmeeg
 from conftest import write_study
-from glmeeg.methods import methods_paragraph
+from glmeeg.report.methods import methods_paragraph
 
 # One base design; each case below changes one setting that changes the result.
 BASE_TEST = '''

@@ -23,7 +23,7 @@ import glmeeg
 from conftest import write_study
 from glmeeg.cli import app
 from glmeeg.errors import ModelError
-from glmeeg.findings import CLUSTER_CAUTION
+from glmeeg.results.findings import CLUSTER_CAUTION
 from glmeeg.inference import permutation as perm
 from glmeeg.inference.corrections import TFCE, ClusterMass, MaxStatistic
 from glmeeg.inference.graph import graph_arrays, points_graph
@@ -394,7 +394,7 @@ def permutation_run(tmp_path_factory):
 
 
 def test_pipeline_cluster_outputs(permutation_run):
-    # The layout checked is the documented one (clusters.csv columns of glmeeg.findings); the
+    # The layout checked is the documented one (clusters.csv columns of glmeeg.results.findings); the
     # outside values are the planted effect (conftest) and scipy's t quantile for the threshold.
     folder = permutation_run / "b-cluster"
     clusters = pd.read_csv(folder / "clusters.csv")
@@ -519,7 +519,7 @@ def test_bad_permutation_settings_are_one_line_exit_2(tmp_path, case):
 def test_tfce_finds_the_planted_urgency_effect_and_nothing_remote(tmp_path):
     from glmeeg.pipeline import fit_subjects, plan_analysis, test_group
     from glmeeg.results import provenance
-    from glmeeg.simulate import DEMO_TRUTH, write_demo_study
+    from glmeeg.demo import DEMO_TRUTH, write_demo_study
 
     design = write_demo_study(tmp_path / "demo")           # 28 volunteers, as the demo
     header = design.read_text().split("[[test]]")[0]

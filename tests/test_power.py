@@ -1,4 +1,4 @@
-"""Power and sample-size planning (glmeeg.power and `glmeeg power`) against outside values.
+"""Power and sample-size planning (glmeeg.planning.analytic and `glmeeg power`) against outside values.
 
 Outside sources: statsmodels.stats.power (TTestIndPower, TTestPower, FTestAnovaPower), which
 computes power from the same exact noncentral distributions with its own code; Cohen (1992),
@@ -20,7 +20,7 @@ from typer.testing import CliRunner
 
 from glmeeg.cli import app
 from glmeeg.errors import GlmeegError
-from glmeeg.power import PowerSolution, power_curve, solve_power
+from glmeeg.planning.analytic import PowerSolution, power_curve, solve_power
 
 # statsmodels spells the one-sided alternatives differently; for "less" it expects the effect
 # with its sign (negative), glmeeg the size in the direction of the test.

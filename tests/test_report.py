@@ -54,7 +54,7 @@ def test_report_embeds_every_figure_and_lists_the_planted_cluster(run):
 
 
 def test_a_figure_that_cannot_be_drawn_becomes_a_note(run, monkeypatch):
-    import glmeeg.figures as figures
+    import glmeeg.report.figures as figures
 
     def broken(*args, **kwargs):
         raise RuntimeError("no positions for this figure")

@@ -64,7 +64,7 @@ def test_demo_report_loads_every_figure_in_chromium(tmp_path):
     assert total >= 8 and loaded == total
     # The planted urgency effect (DEMO_TRUTH: centro-parietal, 300-550 ms) is a cluster table
     # row: header cells name the columns, each row's cells are tab-separated.
-    from glmeeg.simulate import DEMO_TRUTH
+    from glmeeg.demo import DEMO_TRUTH
 
     lines = [ln.split("\t") for ln in rows.splitlines()]
     header = next(ln for ln in lines if "peak_channel" in ln)

@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 from typer.testing import CliRunner
 
-from glmeeg.cache import CACHE_FOLDER, FitCache
+from glmeeg.subject_level.cache import CACHE_FOLDER, FitCache
 from glmeeg.cli import app
 from glmeeg.results import load_run
 
@@ -41,7 +41,7 @@ correction = "fdr"
 # the progress display is the CLI's own, wrapped.
 KILL_AFTER_FOUR = """\
 import os, signal, sys
-import glmeeg.cli as cli
+import glmeeg.cli, glmeeg.cli.commands as cli
 original = cli._progress
 def progress(quiet, verbose=False):
     bars = original(quiet, verbose)
@@ -51,7 +51,7 @@ def progress(quiet, verbose=False):
     return show
 cli._progress = progress
 sys.argv = ["glmeeg", "run", sys.argv[1], "--out", sys.argv[2], "-q"]
-cli.main()
+glmeeg.cli.main()
 """
 
 

@@ -1,4 +1,4 @@
-"""Robust subject-level regression (``glmeeg.robust.fit_robust``) checked against outside values.
+"""Robust subject-level regression (``glmeeg.subject_level.robust.fit_robust``) checked against outside values.
 
 * statsmodels ``RLM`` (HuberT, TukeyBiweight) fitted point by point, at sampled points of data
   with outliers, and on the stackloss data;
@@ -17,7 +17,7 @@ import statsmodels.api as sm
 from statsmodels.datasets import stackloss
 
 from glmeeg.errors import ModelError
-from glmeeg.robust import RobustFit, fit_robust
+from glmeeg.subject_level.robust import RobustFit, fit_robust
 
 # Stackloss, Huber's T (t = 1.345), MAD scale, order (AIRFLOW, WATERTEMP, ACIDCONC, const).
 # Source: R (MASS::rlm) results kept by statsmodels in
@@ -364,9 +364,9 @@ def test_non_finite_points_flat_points_and_rank_loss():
 
 
 def test_docstring_example_runs():
-    import glmeeg.robust
+    import glmeeg.subject_level.robust
 
-    result = doctest.testmod(glmeeg.robust, optionflags=doctest.ELLIPSIS)
+    result = doctest.testmod(glmeeg.subject_level.robust, optionflags=doctest.ELLIPSIS)
     assert result.attempted > 0 and result.failed == 0
 
 

@@ -9,7 +9,7 @@ from typer.testing import CliRunner
 import glmeeg
 from conftest import write_study
 from glmeeg.cli import app
-from glmeeg.robust import fit_robust
+from glmeeg.subject_level.robust import fit_robust
 
 
 def _with(design, extra: str):
@@ -90,9 +90,9 @@ def test_negative_trial_weights_are_refused(tmp_path):
 
 def test_robust_fit_recovers_the_demo_urgency_effect_better_than_least_squares(tmp_path):
     # The demo keeps blinks (3-12 % of kept trials, 80-200 µV at the frontal pole) and a few
-    # spikes and drifts in the trials the rejection let through (glmeeg.simulate). Truth: the
+    # spikes and drifts in the trials the rejection let through (glmeeg.demo). Truth: the
     # planted high-vs-low urgency map, 2 steps x 1.5 µV x the planted pattern (DEMO_TRUTH).
-    from glmeeg.simulate import DEMO_TRUTH, write_demo_study
+    from glmeeg.demo import DEMO_TRUTH, write_demo_study
 
     design = write_demo_study(tmp_path / "demo", n_subjects=10, seed=20261201)
     header, tests = design.read_text().split("[group_model]", 1)

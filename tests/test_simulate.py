@@ -1,4 +1,4 @@
-"""Tests of the demo study generator (glmeeg.simulate)."""
+"""Tests of the demo study generator (glmeeg.demo)."""
 
 from __future__ import annotations
 
@@ -9,9 +9,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from glmeeg import simulate
+from glmeeg import demo as simulate
 from glmeeg.sensors import standard_position
-from glmeeg.simulate import DEMO_DESIGN, DEMO_TRUTH, write_demo_study
+from glmeeg.demo import DEMO_DESIGN, DEMO_TRUTH, write_demo_study
 from glmeeg.spec import load_design
 
 REPO = Path(__file__).resolve().parents[1]

@@ -29,7 +29,7 @@ from glmeeg.inference.corrections import (PERMUTATION_METHODS, ClusterMass, Holm
 from glmeeg.inference.permutation import permutation_test
 from glmeeg import results, spec
 from glmeeg.results import provenance
-from glmeeg.simulated_power import simulate_power
+from glmeeg.planning.simulated import simulate_power
 
 
 def pilot_from_arrays(Y, G, L, *, channels=("Cz",), n_times=1, correction=NoCorrection(),
@@ -356,7 +356,7 @@ def test_cli_bad_input_exits_2_with_one_line(saved, args, fragment):
 def test_statistic_is_group_tests():
     # The simulation's statistic skips group_test's effect-size intervals; the maps must be the
     # same (group_test is checked against statsmodels in test_reference_group_level.py).
-    from glmeeg.simulated_power import _statistic
+    from glmeeg.planning.simulated import _statistic
 
     rng = np.random.default_rng(3)
     Y = rng.standard_normal((14, 2, 9)) + 0.3

@@ -53,8 +53,8 @@ import scipy.linalg
 import scipy.stats
 
 from ..errors import ExecutionError, ModelError
-from ..group_level import group_arrays
-from ..subject_level import _conditioning
+from ..group_level.glm import group_arrays
+from ..subject_level.ols import _conditioning
 from .corrections import TFCE, ClusterMass, MaxStatistic
 
 __all__ = ["BLOCK", "PermutationResult", "choose_resampling", "resamplings", "random_block",
@@ -225,7 +225,7 @@ class _Engine:
 
     def statistics(self, rows: np.ndarray) -> np.ndarray:
         """``(B, P)`` t or F maps for a batch of resamplings (sign rows or subject orders)."""
-        from ..kernels import weighted_row_sums
+        from .kernels import weighted_row_sums
 
         B = rows.shape[0]
         if self.scheme == "sign-flip":
@@ -236,7 +236,7 @@ class _Engine:
         U = weighted_row_sums(np.ascontiguousarray(W.reshape(B * q, self.n)), self.R, _KERNEL_BLOCK)
         U = U.reshape(B, q, self.k, self.P)
         if self.k == 1 and self.m == 1:
-            from ..kernels import t_from_projections
+            from .kernels import t_from_projections
             with np.errstate(divide="ignore", invalid="ignore"):
                 return t_from_projections(U[:, :, 0, :], np.ascontiguousarray(self.K[0]), self.rz2,
                                           self.KKt[0, 0] / self.dfe)
@@ -270,12 +270,12 @@ class _Engine:
 def _unusable_points(Y: np.ndarray, G: np.ndarray, L: np.ndarray, *, method: str, trim: float) -> np.ndarray:
     """Points whose observed variance holds no digit of the data (the group test's own rule,
     :func:`glmeeg.group_level.unusable_variance`): they get no statistic in any resampling."""
-    from ..group_level import unusable_variance
-    from ..subject_level import fit_ols
+    from ..group_level.glm import unusable_variance
+    from ..subject_level.ols import fit_ols
 
     n, k, P = Y.shape
     if method != "glm":
-        from ..group_robust import trimmed_test, welch_test
+        from ..group_level.robust import trimmed_test, welch_test
 
         stat = (trimmed_test(Y[:, 0], G, L, trim=trim) if method == "trimmed"
                 else welch_test(Y[:, 0], G, L)).statistic
@@ -305,7 +305,7 @@ class _WithoutPoints:
 def _robust_engine(Y: np.ndarray, G: np.ndarray, L: np.ndarray, scheme: Scheme, *, kind: str,
                    method: str, trim: float):
     """The trimmed-t or Welch engine of a one-sample or two-group test (checked here)."""
-    from ..group_robust import GROUP_METHODS, group_layout
+    from ..group_level.robust import GROUP_METHODS, group_layout
 
     if method not in GROUP_METHODS:
         raise ModelError(f"method must be one of {', '.join(GROUP_METHODS)}; got {method!r}")
@@ -364,7 +364,7 @@ class _NullWork:
 
 def _batch_max(work: _NullWork, maps: np.ndarray, best: np.ndarray) -> np.ndarray:
     """Each map's maximum of the corrected statistic (``maps`` hold ``sign * statistic`` with
-    non-finite values set to 0, as :func:`glmeeg.kernels.scan_maps` leaves them)."""
+    non-finite values set to 0, as :func:`glmeeg.inference.kernels.scan_maps` leaves them)."""
     c = work.correction
     if work.method == "max":
         return best
@@ -388,7 +388,7 @@ def null_chunk(work: _NullWork, item: tuple) -> tuple[np.ndarray, np.ndarray]:
     (int64) and the maximum statistic of each. Random resamplings are drawn here from their seed
     blocks (``start`` is a multiple of :data:`BLOCK`); exhaustive ones come with the item.
     """
-    from ..kernels import scan_maps
+    from .kernels import scan_maps
 
     start, stop, given = item
     if given is not None:
@@ -434,7 +434,7 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
     df : tuple of float
         Its degrees of freedom (for the default cluster-forming threshold). For Yuen's and
         Welch's tests, whose df differ by point, pass the median df (what
-        :func:`glmeeg.group_robust.trimmed_test` and :func:`~glmeeg.group_robust.welch_test`
+        :func:`glmeeg.group_level.robust.trimmed_test` and :func:`~glmeeg.group_level.robust.welch_test`
         report): the threshold is then one |t| for every point and every resampling.
     alternative : {"two-sided", "greater", "less"}
     correction : MaxStatistic, ClusterMass or TFCE
@@ -449,7 +449,7 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
         (one sample: Tukey-McLaughlin, under sign-flipping; two groups: Yuen, under
         permutation) or Welch's t (two groups, under permutation); see
         :mod:`glmeeg.inference.robust_resampling`. The robust methods take the layouts of
-        :func:`glmeeg.group_robust.group_layout`.
+        :func:`glmeeg.group_level.robust.group_layout`.
     trim : float, default 0.2
         Share trimmed from each tail (``method="trimmed"`` only).
     memory_limit : int, default 512 MiB

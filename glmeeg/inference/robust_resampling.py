@@ -20,8 +20,8 @@ so results are bitwise identical for any batch size.
     unequal variances the permutation test of the studentized statistic keeps its level
     asymptotically [1]_, and it is exact when the groups' distributions are the same.
 
-The statistics equal :func:`glmeeg.group_robust.trimmed_test` and
-:func:`glmeeg.group_robust.welch_test` on the same data (to rounding), including the direction
+The statistics equal :func:`glmeeg.group_level.robust.trimmed_test` and
+:func:`glmeeg.group_level.robust.welch_test` on the same data (to rounding), including the direction
 of the contrast. Points with a non-finite value give NaN.
 
 The compiled kernels are imported lazily by the permutation engine, so importing glmeeg does
@@ -245,7 +245,7 @@ class TrimmedSignFlipEngine:
     trim : float
         Share trimmed from each tail.
     sign : float
-        +1 or -1, the contrast's direction (:func:`glmeeg.group_robust.group_layout`).
+        +1 or -1, the contrast's direction (:func:`glmeeg.group_level.robust.group_layout`).
     """
 
     scheme = "sign-flip"

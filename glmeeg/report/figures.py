@@ -26,14 +26,14 @@ from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
 
-from .errors import GlmeegError
+from ..errors import GlmeegError
 
 if TYPE_CHECKING:  # pragma: no cover
     import pandas as pd
     from matplotlib.axes import Axes as PlotAxes
     from matplotlib.figure import Figure
 
-    from .results import TestResult
+    from ..results import TestResult
 
 __all__ = ["statistic_image", "estimate_time_courses", "frequency_time_image", "design_image",
            "power_curve_figure", "channel_order", "scalp_map"]
@@ -65,7 +65,7 @@ def _figure(ax: "PlotAxes | None", size: tuple[float, float]) -> tuple["Figure",
 
 def _result(result: "TestResult | str | Path") -> "TestResult":
     if isinstance(result, (str, Path)):
-        from .results import load_result
+        from ..results import load_result
 
         return load_result(result)
     return result
@@ -170,7 +170,7 @@ def channel_order(channels: Sequence[str]) -> tuple[np.ndarray, bool]:
     >>> channel_order(["Pz", "Fz", "EXG1", "Cz"])
     (array([1, 3, 0, 2]), True)
     """
-    from .sensors import standard_positions
+    from ..sensors.positions import standard_positions
 
     y = standard_positions(list(channels))[:, 1]
     known = np.flatnonzero(np.isfinite(y))
@@ -259,7 +259,7 @@ def statistic_image(result: "TestResult | str | Path", *, frequency: float | Non
     ax.set_ylim(y_edges[-1], y_edges[0])  # front channels at the top
     _channel_ticks(ax, names)
     ax.set_xlabel("time (ms)")
-    from .sensors import standard_positions
+    from ..sensors.positions import standard_positions
 
     placed = int(np.isfinite(standard_positions(names)[:, 1]).sum())
     ax.set_ylabel("channel (file order)" if not by_position else "channel (front to back)"
@@ -505,7 +505,7 @@ def power_curve_figure(curve: "pd.DataFrame", *, target: float | None = 0.8,
     Parameters
     ----------
     curve : pandas.DataFrame
-        The output of :func:`glmeeg.power.power_curve`: columns ``n`` and ``power``.
+        The output of :func:`glmeeg.planning.analytic.power_curve`: columns ``n`` and ``power``.
     target : float or None, default 0.8
         Target power, drawn as a dashed horizontal line, in (0, 1); None draws none. The
         smallest ``n`` of the curve reaching it is marked with a dotted vertical line.
@@ -611,7 +611,7 @@ def scalp_map(result: "TestResult | str | Path", *, time: float | None = None,
     if len(names) < 4:
         raise GlmeegError(f"scalp map: {len(names)} channels; at least 4 are needed to interpolate")
     if positions is None:
-        from .sensors import standard_positions
+        from ..sensors.positions import standard_positions
 
         positions = standard_positions(names)
         missing = [n for n, p in zip(names, positions) if not np.isfinite(p).all()]

@@ -26,7 +26,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.linalg
 
-from .errors import ModelError
+from ..errors import ModelError
 
 __all__ = ["RobustFit", "fit_robust", "NORMS", "CONVERGENCE_RULES"]
 
@@ -123,7 +123,7 @@ class RobustFit:
 
     def contrast(self, c: np.ndarray) -> np.ndarray:
         """Contrast estimates ``c @ betas``: ``(rows, n_points)`` for a ``(rows, n_columns)`` c."""
-        from .subject_level import small_product
+        from .ols import small_product
 
         return small_product(np.atleast_2d(np.asarray(c, dtype=np.float64)), self.betas)
 
@@ -321,7 +321,7 @@ def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: flo
     Examples
     --------
     >>> import numpy as np
-    >>> from glmeeg.robust import fit_robust
+    >>> from glmeeg.subject_level.robust import fit_robust
     >>> rng = np.random.default_rng(0)
     >>> X = np.column_stack([np.ones(40), np.arange(40) % 2])
     >>> Y = 2.0 + 3.0 * X[:, [1]] + rng.normal(size=(40, 3))
@@ -360,7 +360,7 @@ def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: flo
                 _REFRESH_CHANGE, scale_constant, _PIVOT_FLOOR, _BAND_START, _BAND_FIRST,
                 min(_BAND_MAX, _BAND_TRIALS / (0.86 * rows.size)), _BAND_MAX)
     _run_blocks(Y, settings, out)
-    from .subject_level import small_product
+    from .ols import small_product
 
     out["betas"] = small_product(M, out["betas"])
     out["xtx_inv"] = (M @ r_inv) @ (M @ r_inv).T

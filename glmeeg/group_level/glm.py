@@ -19,8 +19,8 @@ import scipy.special
 import scipy.stats
 
 from .effect_sizes import noncentrality_interval_f, noncentrality_interval_t
-from .errors import ModelError
-from .subject_level import fit_ols, unusable_variance
+from ..errors import ModelError
+from ..subject_level.ols import fit_ols, unusable_variance
 
 __all__ = ["GroupStatistics", "group_arrays", "group_test", "group_test_in_chunks", "p_values",
            "unusable_variance",

@@ -17,18 +17,18 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .cache import FitCache
-from .errors import ExecutionError, GlmeegError, ModelError, StudyError
-from .formula import ContrastMatrix, Design, DesignMatrix, build_design, contrast_matrix, design_matrix
-from .group_level import group_test
-from .findings import describe_clusters, significant_regions
-from .inference.corrections import PERMUTATION_METHODS, adjust_p
-from .results import Provenance, Resampling, RunResult, SubjectSummary, TestResult, provenance
-from .spec import DesignSpec, TestSpec, load_design
-from .study import Study, read_study
-from .parallel import Backend, Progress
-from .subject_jobs import SubjectJob
-from .subject_level import small_product
+from ..subject_level.cache import FitCache
+from ..errors import ExecutionError, GlmeegError, ModelError, StudyError
+from ..formula import ContrastMatrix, Design, DesignMatrix, build_design, contrast_matrix, design_matrix
+from ..group_level.glm import group_test
+from ..results.findings import describe_clusters, significant_regions
+from ..inference.corrections import PERMUTATION_METHODS, adjust_p
+from ..results import Provenance, Resampling, RunResult, SubjectSummary, TestResult, provenance
+from ..spec import DesignSpec, TestSpec, load_design
+from ..study import Study, read_study
+from ..parallel import Backend, Progress
+from ..subject_level.jobs import SubjectJob
+from ..subject_level.ols import small_product
 
 __all__ = ["TestPlan", "AnalysisPlan", "SubjectEstimates", "plan_analysis", "fit_subjects",
            "test_group", "run_analysis"]
@@ -175,7 +175,7 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
             raise ModelError(f"{where}: alternative {t.alternative!r} applies to t tests only; this "
                              "is an F test (use two-sided)")
         if t.bootstrap:
-            from .group_robust import group_layout
+            from ..group_level.robust import group_layout
             if k > 1:
                 raise ModelError(f"{where}: bootstrap intervals take one subject contrast")
             try:
@@ -183,7 +183,7 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
             except ModelError as e:
                 raise ModelError(f"{where}: {e}") from None
         if t.group_method != "glm":
-            from .group_robust import group_layout
+            from ..group_level.robust import group_layout
             if k > 1:
                 raise ModelError(f"{where}: group_method {t.group_method!r} takes one subject contrast")
             try:
@@ -192,7 +192,7 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
                 raise ModelError(f"{where}: {e}") from None
         scheme = None
         if t.correction in PERMUTATION_METHODS:
-            from .inference.permutation import choose_resampling
+            from ..inference.permutation import choose_resampling
             try:
                 scheme = choose_resampling(gm.matrix, gc.matrix, requested=t.resampling or "auto")
             except ModelError as e:
@@ -215,10 +215,10 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
 
 def _neighbour_graph(spec: DesignSpec, study: Study, root, *, required: bool, warnings: list):
     """Sensor neighbours and the graph of points, for cluster and TFCE corrections."""
-    from .errors import GlmeegError
-    from .inference.graph import map_graph
-    from .neighbours import sensor_graph
-    from .study import read_neighbour_table
+    from ..errors import GlmeegError
+    from ..inference.graph import map_graph
+    from ..sensors.neighbours import sensor_graph
+    from ..study import read_neighbour_table
 
     table, extra = None, {}
     if spec.data.neighbours is not None:
@@ -256,7 +256,7 @@ class SubjectEstimates:
 
 
 def subject_jobs(plan: AnalysisPlan, *, hashes: dict[str, str] | None = None) -> list[SubjectJob]:
-    """One :class:`~glmeeg.subject_jobs.SubjectJob` per subject, in analysis order.
+    """One :class:`~glmeeg.subject_level.jobs.SubjectJob` per subject, in analysis order.
 
     ``hashes`` are the SHA-256 of the input files (``Provenance.input_sha256``); they enter the
     jobs' cache keys.
@@ -301,8 +301,8 @@ def check_memory(plan: AnalysisPlan, jobs: list[SubjectJob], memory_limit: int) 
     ExecutionError
         Naming the subject (or the group data), what it needs and the budget.
     """
-    from .parallel import format_size
-    from .subject_jobs import job_memory
+    from ..parallel import format_size
+    from ..subject_level.jobs import job_memory
 
     n_rows = sum(t.subject_contrast.n_rows for t in plan.tests)
     P = plan.study.axes.n_points
@@ -333,7 +333,7 @@ def fit_subjects(plan: AnalysisPlan, *, backend: Backend | None = None, cache: F
                  progress: Progress | None = None, memory_limit: int | None = None) -> SubjectEstimates:
     """Fit the subject model at every point of every subject.
 
-    Each subject is one job (:mod:`glmeeg.subject_jobs`) that reads its own epoch file; the
+    Each subject is one job (:mod:`glmeeg.subject_level.jobs`) that reads its own epoch file; the
     backend runs the jobs (in this process by default, else on Dask workers). Only the
     contrast estimates the tests need are kept, so memory stays near one subject's data per
     worker plus ``n_subjects x n_contrast_rows x n_points`` values.
@@ -362,8 +362,8 @@ def fit_subjects(plan: AnalysisPlan, *, backend: Backend | None = None, cache: F
     ExecutionError
         The memory limit is too small for a subject, or workers died on every try.
     """
-    from .parallel import InProcess, default_memory_limit
-    from .subject_jobs import run_subject_job
+    from ..parallel import InProcess, default_memory_limit
+    from ..subject_level.jobs import run_subject_job
 
     st = plan.study
     jobs = subject_jobs(plan, hashes=hashes)
@@ -456,8 +456,8 @@ def _cluster_effect_sizes(clusters, labels: np.ndarray, Y: np.ndarray, test: Tes
 
 
 def _bootstrap_settings(test: TestPlan) -> dict:
-    """Keyword arguments of :func:`glmeeg.bootstrap.bootstrap_interval` for a test."""
-    from .group_robust import group_layout
+    """Keyword arguments of :func:`glmeeg.group_level.bootstrap.bootstrap_interval` for a test."""
+    from ..group_level.robust import group_layout
 
     groups, sign = group_layout(test.group_matrix.matrix, test.group_contrast.matrix, method="bootstrap")
     trim = (0.2 if test.spec.trim is None else test.spec.trim) if test.spec.group_method == "trimmed" else 0.0
@@ -474,7 +474,7 @@ def _cluster_bootstrap(clusters, labels: np.ndarray, Y: np.ndarray, test: TestPl
     joint draws), with the test's bootstrap settings. Like the cluster's effect size, the
     estimate is selected in the same data and biased away from zero.
     """
-    from .bootstrap import bootstrap_interval, group_estimate
+    from ..group_level.bootstrap import bootstrap_interval, group_estimate
 
     chosen = [c for c in clusters if c.significant]
     if not chosen:
@@ -491,8 +491,8 @@ def _cluster_bootstrap(clusters, labels: np.ndarray, Y: np.ndarray, test: TestPl
 def _residual_checks(Y: np.ndarray, test: TestPlan, notes: list) -> dict:
     """Group-level residual checks of a single-contrast test, as result fields; their
     suggestions are appended to ``notes``."""
-    from .assumptions import group_checks
-    from .results import ResidualChecks
+    from ..group_level.assumptions import group_checks
+    from ..results import ResidualChecks
 
     g = group_checks(Y, test.group_matrix.matrix, test.subjects)
     notes.extend(n for n in g.notes if not n.startswith("fewer than 8"))
@@ -515,29 +515,29 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
     batches sized from ``memory_limit`` (default :func:`glmeeg.parallel.default_memory_limit`),
     reporting ``progress(f"test {name}: resamplings", done, total)``.
     """
-    from .parallel import default_memory_limit
+    from ..parallel import default_memory_limit
 
     memory_limit = memory_limit or default_memory_limit()
     idx = [estimates.subjects.index(s) for s in test.subjects]
     Y = estimates.estimates[idx][:, estimates.rows[test.spec.name], :]
     if test.spec.group_method == "trimmed":
-        from .group_robust import trimmed_test
+        from ..group_level.robust import trimmed_test
         stats = trimmed_test(Y[:, 0], test.group_matrix.matrix, test.group_contrast.matrix,
                              trim=0.2 if test.spec.trim is None else test.spec.trim,
                              alternative=test.spec.alternative)
     elif test.spec.group_method == "welch":
-        from .group_robust import welch_test
+        from ..group_level.robust import welch_test
         stats = welch_test(Y[:, 0], test.group_matrix.matrix, test.group_contrast.matrix,
                            alternative=test.spec.alternative)
     else:
-        from .group_level import group_test_in_chunks
+        from ..group_level.glm import group_test_in_chunks
         stats = group_test_in_chunks(Y, test.group_matrix.matrix, test.group_contrast.matrix,
                                      memory_limit=memory_limit, alternative=test.spec.alternative,
                                      confidence_level=test.spec.confidence_level)
     has_interval = bool(np.isfinite(stats.effect_size_low).any())
     extra: dict = {}
     if test.spec.bootstrap:
-        from .bootstrap import bootstrap_interval
+        from ..group_level.bootstrap import bootstrap_interval
         boot = bootstrap_interval(Y[:, 0], **_bootstrap_settings(test))
         extra.update(estimate_low=boot.low, estimate_high=boot.high)
     correction = test.spec.correction_settings()
@@ -546,7 +546,7 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
     if test.subject_contrast.n_rows == 1:
         extra.update(_residual_checks(Y[:, 0], test, notes))
     if correction.method in PERMUTATION_METHODS:
-        from .inference.permutation import permutation_test
+        from ..inference.permutation import permutation_test
 
         perm = permutation_test(Y, test.group_matrix.matrix, test.group_contrast.matrix,
                                 kind=stats.kind, df=stats.df, alternative=test.spec.alternative,
@@ -658,7 +658,7 @@ def run_analysis(design: str | Path | AnalysisPlan, *, progress: Progress | None
     >>> run = run_analysis("study/design.toml", workers=2)   # doctest: +SKIP
     >>> print(run.test("urgency-high-vs-low"))              # doctest: +SKIP
     """
-    from .parallel import default_memory_limit, open_backend, parse_size
+    from ..parallel import default_memory_limit, open_backend, parse_size
 
     limit = default_memory_limit() if memory_limit is None else parse_size(memory_limit)
     plan = design if isinstance(design, AnalysisPlan) else plan_analysis(design)
@@ -695,7 +695,7 @@ def check_assumptions(plan: AnalysisPlan) -> str:
     point, the share of points where normality is rejected, outlying subjects, and suggestions
     of robust options where they matter.
     """
-    from .assumptions import group_checks, outlying_trials
+    from ..group_level.assumptions import group_checks, outlying_trials
 
     st = plan.study
     lines = ["assumption checks (they describe the data; they are not tests to pass):"]

@@ -10,7 +10,7 @@ head; it is good for layout, interpolation and neighbour graphs, not for source 
 
 Coordinates: x towards the right ear, y towards the nasion, z towards the vertex.
 
-The neighbour graph of sensors is in :mod:`glmeeg.neighbours`.
+The neighbour graph of sensors is in :mod:`glmeeg.sensors.neighbours`.
 
 References
 ----------

@@ -48,8 +48,8 @@ def _reports_errors(fn):
     def wrapper(*args, **kwargs):
         import warnings
 
-        from ._console import INTERRUPTED
-        from .errors import GlmeegError
+        from . import INTERRUPTED
+        from ..errors import GlmeegError
 
         try:
             try:
@@ -72,7 +72,7 @@ def _reports_errors(fn):
 
 def _version(value: bool) -> None:
     if value:
-        from ._version import __version__
+        from .._version import __version__
 
         typer.echo(f"glmeeg {__version__}")
         raise typer.Exit()
@@ -88,7 +88,7 @@ def _progress(quiet: bool, verbose: bool = False):
     """The command's progress display (None with --quiet); sets up logging to stderr too."""
     import sys as real_sys  # the process's own stderr (tests may stand in for ``sys``)
 
-    from .progress import ProgressBars, configure_logging
+    from ..progress import ProgressBars, configure_logging
 
     stream = real_sys.stderr
     live = sys.stderr.isatty()
@@ -126,11 +126,11 @@ def run(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
     Finished subject fits are kept in OUT/subject-fits: a run that was interrupted, or a re-run
     with other tests, refits only what changed.
     """
-    from .cache import CACHE_FOLDER
-    from .errors import GlmeegError
-    from .parallel import parse_size
-    from .pipeline import plan_analysis, run_analysis
-    from .results import check_output_folder, write_run
+    from ..subject_level.cache import CACHE_FOLDER
+    from ..errors import GlmeegError
+    from ..parallel import parse_size
+    from ..pipeline import plan_analysis, run_analysis
+    from ..results import check_output_folder, write_run
 
     limit = None if memory_limit is None else parse_size(memory_limit)
     out = check_output_folder(out)  # before fitting: a wrong --out should cost nothing
@@ -149,8 +149,8 @@ def run(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
         raise
     _close_progress()
     write_run(result, out, report=None if no_report else _report(result))
-    from .cache import FitCache
-    from .pipeline import subject_jobs
+    from ..subject_level.cache import FitCache
+    from ..pipeline import subject_jobs
 
     # Fits of earlier data or subject models are not needed again.
     FitCache(Path(out) / CACHE_FOLDER).prune({j.key for j in subject_jobs(
@@ -167,7 +167,7 @@ def check(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
                                              "assumptions: outlying trials and subjects, normality "
                                              "of group-level residuals.")] = False) -> None:
     """Show what `run` would do (subjects, epochs, design columns, contrasts) without fitting."""
-    from .pipeline import check_assumptions, plan_analysis
+    from ..pipeline import check_assumptions, plan_analysis
 
     plan = plan_analysis(design)
     typer.echo(plan.describe())
@@ -182,10 +182,10 @@ def neighbours(design: Annotated[Path, typer.Argument(help="Design file (TOML)."
                out: Annotated[Optional[Path], typer.Option("--out", "-o", help="Write the pairs as a "
                               "neighbour table (CSV: channel, neighbour) usable as [data] neighbours.")] = None) -> None:
     """Show which sensors count as neighbours for cluster and TFCE corrections."""
-    from .neighbours import sensor_graph
-    from .ownership import check_replaceable
-    from .spec import load_design
-    from .study import read_neighbour_table, read_study
+    from ..sensors.neighbours import sensor_graph
+    from ..results.ownership import check_replaceable
+    from ..spec import load_design
+    from ..study import read_neighbour_table, read_study
 
     if out is not None:  # before any work: a file of the user's there is never replaced
         check_replaceable(out, kind="table", label="--out (neighbour table)")
@@ -201,7 +201,7 @@ def neighbours(design: Annotated[Path, typer.Argument(help="Design file (TOML)."
         typer.echo(f"warning: {len(graph.isolated)} sensor(s) have no neighbours: "
                    f"{', '.join(graph.isolated)}", err=True)
     if out is not None:
-        from .results import write_table
+        from ..results import write_table
         write_table(graph.to_frame(), out, label="--out (neighbour table)")
         typer.echo(f"neighbour table written to {out}")
 
@@ -210,7 +210,7 @@ def neighbours(design: Annotated[Path, typer.Argument(help="Design file (TOML)."
 @_reports_errors
 def show(result: Annotated[Path, typer.Argument(help="A run's output folder, or one test's folder.")]) -> None:
     """Print a readable summary of saved results."""
-    from .results import CLINICAL_CAUTION, load_run
+    from ..results import CLINICAL_CAUTION, load_run
 
     for t in load_run(result):
         typer.echo(str(t))
@@ -224,12 +224,12 @@ def demo(folder: Annotated[Path, typer.Argument(help="Folder for the demo study 
          seed: Annotated[int, typer.Option(help="Seed of the simulated data.")] = 20261201,
          quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print only the verdict.")] = False) -> None:
     """Write the demo study (alarm urgency in ship pilots and trainees), analyse it, print findings."""
-    from .pipeline import run_analysis
-    from .results import write_run
-    from .simulate import demo_verdict, write_demo_study
+    from ..pipeline import run_analysis
+    from ..results import write_run
+    from ..demo import demo_verdict, write_demo_study
 
-    from .results import check_output_folder
-    from .simulate import check_demo_folder
+    from ..results import check_output_folder
+    from ..demo import check_demo_folder
 
     folder = check_demo_folder(folder)
     check_output_folder(folder / "results")
@@ -249,7 +249,7 @@ def _report(result) -> str | None:
     """The run's HTML report; None (with a warning) if it cannot be made: a report never fails
     a run that succeeded."""
     try:
-        from .report import render_report
+        from ..report.html import render_report
         return render_report(result)
     except Exception as e:  # noqa: BLE001 - anything: the results matter more than the report
         typer.echo(f"warning: report.html not written ({e})", err=True)
@@ -262,8 +262,8 @@ def report(results: Annotated[Path, typer.Argument(help="A run's output folder."
            out: Annotated[Optional[Path], typer.Option("--out", "-o", help="Report file (default: "
                                                        "RESULTS/report.html).")] = None) -> None:
     """Write the self-contained HTML report of a finished run (figures need glmeeg[plots])."""
-    from .report import render_report
-    from .results import load_run_result, write_report
+    from ..report.html import render_report
+    from ..results import load_run_result, write_report
 
     run = load_run_result(results)
     path = write_report(results, render_report(run), out=out)
@@ -277,7 +277,7 @@ def schema(out: Annotated[Optional[Path], typer.Option("--out", "-o", help="Writ
     """Print the JSON Schema of a test's summary.json (versioned; one JSON document)."""
     import json
 
-    from .results import summary_schema, write_text
+    from ..results import summary_schema, write_text
 
     text = json.dumps(summary_schema(), indent=2) + "\n"
     if out is None:
@@ -297,7 +297,7 @@ _SIMULATION_OPTIONS = {"n": "--n", "simulations": "--simulations", "effect_scale
 
 
 def _parse_curve(text: str, option: str = "--curve") -> list[float]:
-    from .errors import GlmeegError
+    from ..errors import GlmeegError
 
     try:
         values = [float(v) for v in text.split(",") if v.strip()]
@@ -310,7 +310,7 @@ def _parse_curve(text: str, option: str = "--curve") -> list[float]:
 
 def _one_n(text: str | None):
     """--n of the parametric calculation: one number (checked by solve_power)."""
-    from .errors import GlmeegError
+    from ..errors import GlmeegError
 
     if text is None:
         return None
@@ -332,7 +332,7 @@ _POWER_HELP = ("Solve the missing one of effect size, n, power (or alpha) of a t
                "each n are simulated from the test's effect map and its subjects' noise maps and "
                "analysed with the same group test and correction; the share that detect the effect "
                "(any significant point; a significant point in the test's significant region) is "
-               "the power, with its Monte-Carlo error (glmeeg.simulated_power.simulate_power).")
+               "the power, with its Monte-Carlo error (glmeeg.planning.simulated.simulate_power).")
 
 
 @app.command("power", help=_POWER_HELP)
@@ -387,15 +387,15 @@ def power_command(
                        "table (n, total_n, criterion, detections, simulations, probability, "
                        "standard_error, low, high) to this CSV file.")] = None,
         as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False) -> None:
-    """Power and sample size of a t or F test (see ``glmeeg.power.solve_power``), or simulated
-    power of a saved test (``glmeeg.simulated_power.simulate_power``)."""
+    """Power and sample size of a t or F test (see ``glmeeg.planning.analytic.solve_power``), or simulated
+    power of a saved test (``glmeeg.planning.simulated.simulate_power``)."""
     import json
 
-    from .errors import GlmeegError
-    from .power import power_curve, solve_power
+    from ..errors import GlmeegError
+    from ..planning.analytic import power_curve, solve_power
 
     if plot is not None:
-        from .ownership import check_replaceable
+        from ..results.ownership import check_replaceable
 
         check_replaceable(plot, kind="png", label="--plot")
     if from_result is not None:
@@ -460,8 +460,8 @@ def power_command(
     if plot is not None:
         if table is None:
             raise GlmeegError("--plot: draws the power curve; give --curve too (e.g. --curve 12,16,24,32)")
-        from .figures import power_curve_figure
-        from .results import write_figure
+        from ..report.figures import power_curve_figure
+        from ..results import write_figure
 
         label = "n per group" if solution.design == "two-sample" else "n (participants)"
         write_figure(power_curve_figure(table, target=solution.power, n_label=label), plot, label="--plot")
@@ -487,9 +487,9 @@ def _simulated_power(from_result: Path, *, n: str | None, alpha, simulations, co
     import json
     import os
 
-    from .errors import GlmeegError
-    from .inference.corrections import PERMUTATION_METHODS, correction_from_name
-    from .results import load_result
+    from ..errors import GlmeegError
+    from ..inference.corrections import PERMUTATION_METHODS, correction_from_name
+    from ..results import load_result
 
     if (from_result / "run.json").is_file() and not (from_result / "result.npz").is_file():
         tests = sorted(p.name for p in from_result.iterdir() if (p / "result.npz").is_file())
@@ -513,14 +513,14 @@ def _simulated_power(from_result: Path, *, n: str | None, alpha, simulations, co
         if settings.method not in ("cluster", "tfce"):
             raise GlmeegError(f"--neighbours: applies to the cluster and tfce corrections; this "
                               f"simulation uses '{settings.method}'")
-        from .neighbours import neighbours_from_table
-        from .study import read_neighbour_table
+        from ..sensors.neighbours import neighbours_from_table
+        from ..study import read_neighbour_table
 
         table = read_neighbour_table(neighbours, label=str(neighbours))
         graph = neighbours_from_table(result.axes.channels, table, label=str(neighbours))
     if csv is not None:
         # Checked before simulating: a wrong --csv should not cost minutes.
-        from .ownership import check_replaceable
+        from ..results.ownership import check_replaceable
 
         check_replaceable(csv, kind="table", label="--csv")
         parent = csv.absolute().parent
@@ -533,7 +533,7 @@ def _simulated_power(from_result: Path, *, n: str | None, alpha, simulations, co
     options = {k: v for k, v in (("simulations", simulations), ("permutations", permutations),
                                  ("effect_scale", effect_scale), ("seed", seed), ("alpha", alpha))
                if v is not None}
-    from .simulated_power import simulate_power
+    from ..planning.simulated import simulate_power
 
     try:
         sim = simulate_power(result, n=sizes, correction=settings, graph=graph,
@@ -546,7 +546,7 @@ def _simulated_power(from_result: Path, *, n: str | None, alpha, simulations, co
         raise
     _close_progress()
     if csv is not None:
-        from .results import write_table
+        from ..results import write_table
         write_table(sim.to_frame(), csv, label="--csv")
     if as_json:
         typer.echo(json.dumps(sim.model_dump(mode="json")))
@@ -565,13 +565,3 @@ def _simulation_progress():
     def show(n: int, done: int, total: int) -> None:
         bars(f"simulating n = {n}", done, total)
     return show
-
-
-def main() -> None:  # the console script's entry point (glmeeg._console.main) calls app
-    from ._console import main as console_main
-
-    console_main()
-
-
-if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())

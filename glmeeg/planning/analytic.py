@@ -29,7 +29,7 @@ import scipy.optimize
 import scipy.stats
 from pydantic import BaseModel, ConfigDict
 
-from .errors import GlmeegError
+from ..errors import GlmeegError
 
 __all__ = ["PowerSolution", "solve_power", "power_curve", "EEG_TYPICAL_N"]
 

@@ -13,7 +13,7 @@ from __future__ import annotations
 
 from statistics import median
 
-from .results import RunResult, TestResult
+from ..results import RunResult, TestResult
 
 __all__ = ["methods_paragraph"]
 

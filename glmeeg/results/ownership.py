@@ -26,7 +26,7 @@ import re
 import stat
 from pathlib import Path
 
-from .errors import GlmeegError
+from ..errors import GlmeegError
 
 __all__ = ["CACHE_ENTRY", "GENERATOR", "check_replaceable", "describe", "digests", "file_digest",
            "foreign_entries", "read_file_list", "relative_files", "png_is_glmeeg", "unowned_entries"]
@@ -199,7 +199,7 @@ def _is_glmeeg_file(path: Path, kind: str) -> bool:
             doc = json.loads(path.read_bytes().decode("utf-8"))
             return isinstance(doc, dict) and str(doc.get("$id", "")).startswith("urn:glmeeg:schema:")
         if kind == "run-summary":
-            from .results import RUN_LIST, SCHEMA_VERSION
+            from . import RUN_LIST, SCHEMA_VERSION
 
             return read_file_list(path, schema_version=SCHEMA_VERSION, kind=RUN_LIST) is not None
         if kind == "netcdf":

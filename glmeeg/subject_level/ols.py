@@ -19,7 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.linalg
 
-from .errors import ModelError
+from ..errors import ModelError
 
 __all__ = ["OLSFit", "fit_ols", "small_product", "unusable_variance", "BLOCK_POINTS"]
 

@@ -1,7 +1,7 @@
 """The cache of finished subject fits, kept in the run's output folder.
 
 Each fit is one file ``OUT/subject-fits/<key>.npz``, ``key`` being the SHA-256 of every input of
-the fit (:attr:`glmeeg.subject_jobs.SubjectJob.key`). A fit is written to a temporary file in the
+the fit (:attr:`glmeeg.subject_level.jobs.SubjectJob.key`). A fit is written to a temporary file in the
 same folder and renamed into place, so an entry is either whole or absent: a run killed at any
 moment leaves only complete entries, and the next run takes them instead of refitting.
 :func:`glmeeg.results.write_run` carries the folder over when it replaces a run; once the new
@@ -39,8 +39,8 @@ from pathlib import Path
 import numpy as np
 from numpy.lib import format as npy_format
 
-from .errors import GlmeegError
-from .subject_jobs import FIT_FORMAT, SubjectFit
+from ..errors import GlmeegError
+from .jobs import FIT_FORMAT, SubjectFit
 
 __all__ = ["CACHE_FOLDER", "FitCache"]
 
@@ -175,7 +175,7 @@ class FitCache:
         Parameters
         ----------
         key : str
-            The job's key (:attr:`glmeeg.subject_jobs.SubjectJob.key`).
+            The job's key (:attr:`glmeeg.subject_level.jobs.SubjectJob.key`).
         subject : str
         shape : tuple of int
             The betas' expected ``(n_columns, n_points)``: the job's design columns and points.
@@ -324,7 +324,7 @@ class FitCache:
         """Remove every entry (and leftover temporary file) whose key is not in ``keep``."""
         if not self.folder.is_dir():
             return
-        from .ownership import CACHE_ENTRY
+        from ..results.ownership import CACHE_ENTRY
 
         for p in self.folder.iterdir():
             # Only names the cache gives its entries and their temporary files: never anything else.

@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 from pydantic import BaseModel, ConfigDict
 
-from .axes import Axes
+from ..axes import Axes
 
 __all__ = ["Cluster", "describe_clusters", "clusters_frame", "CLUSTER_CAUTION"]
 
@@ -134,7 +134,7 @@ def significant_regions(significant: np.ndarray, statistic: np.ndarray,
     Positive and negative regions are labelled separately (a region never mixes signs); ids
     follow the lowest point index, positive regions first.
     """
-    from .inference.clusters import label_clusters
+    from ..inference.clusters import label_clusters
 
     indptr, indices = graph
     labels = np.zeros(significant.shape, dtype=np.int32)

@@ -4,7 +4,7 @@ A :class:`SubjectJob` holds everything a worker needs to fit one subject and not
 path of the subject's epoch file (the worker reads it itself, memory-mapped), the epochs used,
 the design matrix, the trial weights and the robust settings. :func:`run_subject_job` is the
 task; it returns the betas, which the caller turns into the tests' contrast estimates and keeps
-in the fit cache (:mod:`glmeeg.cache`). The job's :attr:`~SubjectJob.key` is a hash of all its
+in the fit cache (:mod:`glmeeg.subject_level.cache`). The job's :attr:`~SubjectJob.key` is a hash of all its
 inputs, the data file's own SHA-256 among them, so a cached fit is reused only for the very same
 fit.
 """
@@ -18,7 +18,7 @@ from functools import cached_property
 
 import numpy as np
 
-from .errors import StudyError
+from ..errors import StudyError
 
 __all__ = ["SubjectJob", "SubjectFit", "run_subject_job", "job_memory", "FIT_FORMAT"]
 
@@ -72,7 +72,7 @@ class SubjectJob:
         import numba
         import scipy
 
-        from ._version import __version__
+        from .._version import __version__
 
         def digest(a):
             return None if a is None else hashlib.sha256(np.ascontiguousarray(a).tobytes()).hexdigest()
@@ -130,8 +130,8 @@ def run_subject_job(_shared, job: SubjectJob) -> SubjectFit:
     StudyError
         The file cannot be read, or it holds NaN or Inf in the epochs used.
     """
-    from .study import read_epoch_file
-    from .subject_level import fit_ols
+    from ..study import read_epoch_file
+    from .ols import fit_ols
 
     Y = read_epoch_file(job.path, job.epochs, subject=job.subject, label=job.label)
     X, w = job.design, job.weights

@@ -30,12 +30,12 @@ import numpy as np
 import pandas as pd
 from pydantic import BaseModel, ConfigDict, Field, PlainSerializer, PlainValidator, ValidationError
 
-from .axes import Axes
-from .errors import GlmeegError
-from .effect_sizes import size_label
+from ..axes import Axes
+from ..errors import GlmeegError
+from ..group_level.effect_sizes import size_label
 from .findings import CLUSTER_CAUTION, Cluster, clusters_frame
-from .inference.corrections import Correction
-from .spec import TestSpec
+from ..inference.corrections import Correction
+from ..spec import TestSpec
 
 __all__ = ["Provenance", "SubjectSummary", "TestResult", "RunResult", "load_result", "load_run",
            "write_run", "write_table", "write_figure", "check_output_folder", "provenance", "CAUTION",
@@ -124,7 +124,7 @@ def _write_atomically(path: Path, write, *, label: str, kind: str) -> Path:
 
     ``kind`` says how an existing file is recognised as glmeeg's (``"html"``, ``"png"``,
     ``"schema"``, ``"netcdf"``; ``"table"``: never): any other existing file is left alone
-    (:func:`glmeeg.ownership.check_replaceable`).
+    (:func:`glmeeg.results.ownership.check_replaceable`).
 
     Raises
     ------
@@ -168,7 +168,7 @@ def provenance(*, design_file: Path | None = None, inputs: dict[str, Path] | Non
     import patsy
     import scipy
 
-    from ._version import __version__
+    from .._version import __version__
 
     from .ownership import file_digest
 
@@ -845,8 +845,8 @@ def write_text(text: str, path: str | Path, *, kind: str, label: str | None = No
 
 def png_metadata() -> dict:
     """Text chunks of the PNG files glmeeg writes: ``Software`` marks them as glmeeg's, so a
-    later run may replace them (:mod:`glmeeg.ownership`)."""
-    from ._version import __version__
+    later run may replace them (:mod:`glmeeg.results.ownership`)."""
+    from .._version import __version__
 
     return {"Software": f"glmeeg {__version__}"}
 
@@ -971,7 +971,7 @@ def check_output_folder(out: str | Path) -> Path:
     A folder may be replaced only when it is empty, holds only the subject-fit cache, or is an
     earlier glmeeg result: its ``run.json`` is glmeeg's (result schema, provenance, the list of
     the files the run wrote with their SHA-256), every listed file still has those bytes and
-    the folder holds nothing that is not on the list (:mod:`glmeeg.ownership`). A symbolic
+    the folder holds nothing that is not on the list (:mod:`glmeeg.results.ownership`). A symbolic
     link is resolved: the results go where it points, and the link stays as it is. Called
     before any fitting, so a wrong ``--out`` costs nothing; :func:`write_run` checks again just
     before it swaps the new results in.
@@ -983,7 +983,7 @@ def check_output_folder(out: str | Path) -> Path:
         too long, or it holds files glmeeg did not write or that changed since (named in the
         message); or it cannot be created.
     """
-    from .cache import CACHE_FOLDER
+    from ..subject_level.cache import CACHE_FOLDER
     from .ownership import describe, read_file_list, unowned_entries
 
     try:
@@ -1078,7 +1078,7 @@ def _writer_gone(folder: Path, pid: int) -> bool:
 def _is_glmeeg_write(folder: Path) -> bool:
     """A leftover folder is glmeeg's when it still carries the mark of the write, or it is a
     whole earlier result (swapped out, or between the two renames of the fallback swap)."""
-    from .cache import CACHE_FOLDER
+    from ..subject_level.cache import CACHE_FOLDER
     from .ownership import read_file_list, unowned_entries
 
     if (folder / WRITING_MARK).is_file() and not (folder / WRITING_MARK).is_symlink():
@@ -1156,7 +1156,7 @@ def write_run(run: RunResult, out: str | Path, *, report: str | None = None) -> 
     So a run that fails or is killed leaves the earlier result at ``out`` complete and
     loadable, and never a partial folder under its name. The subject-fit cache
     ``out/subject-fits`` is carried over. ``run.json`` lists every file written with its
-    SHA-256 (:mod:`glmeeg.ownership`).
+    SHA-256 (:mod:`glmeeg.results.ownership`).
 
     Raises
     ------
@@ -1166,7 +1166,7 @@ def write_run(run: RunResult, out: str | Path, *, report: str | None = None) -> 
     """
     import socket
 
-    from .cache import CACHE_FOLDER
+    from ..subject_level.cache import CACHE_FOLDER
     from .ownership import digests, relative_files
 
     out = check_output_folder(out)  # resolves a link: the results go where it points

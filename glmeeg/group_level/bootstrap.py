@@ -22,7 +22,7 @@ import numpy as np
 import scipy.special
 import scipy.stats
 
-from .errors import ModelError
+from ..errors import ModelError
 
 __all__ = ["BootstrapInterval", "bootstrap_interval", "group_estimate"]
 

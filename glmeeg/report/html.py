@@ -16,7 +16,7 @@ import logging
 import numpy as np
 
 from .methods import methods_paragraph
-from .results import CAUTION, CLINICAL_CAUTION, CLUSTER_CAUTION, RunResult, TestResult
+from ..results import CAUTION, CLINICAL_CAUTION, CLUSTER_CAUTION, RunResult, TestResult
 
 __all__ = ["render_report"]
 

@@ -32,12 +32,12 @@ import numpy as np
 import pandas as pd
 from scipy.signal import lfilter
 
-from .sensors import standard_position
+from ..sensors.positions import standard_position
 
 __all__ = ["DEMO_DESIGN", "DEMO_TRUTH", "DemoTruth", "PlantedEffect", "check_demo_folder",
            "write_demo_study", "demo_verdict"]
 
-# demo.json lists the files a demo wrote (glmeeg.ownership); the results folder has its own list.
+# demo.json lists the files a demo wrote (glmeeg.results.ownership); the results folder has its own list.
 DEMO_LIST = "glmeeg demo"
 _DEMO_LIST_VERSION = 1
 _STAGE = re.compile(r"\.glmeeg-demo\.[a-z0-9_]{8}\.partial")
@@ -58,8 +58,8 @@ def check_demo_folder(directory: str | Path) -> Path:
     import os
     import shutil
 
-    from .errors import GlmeegError
-    from .ownership import describe, read_file_list, unowned_entries
+    from ..errors import GlmeegError
+    from ..results.ownership import describe, read_file_list, unowned_entries
 
     root = Path(os.path.abspath(directory))
     try:
@@ -84,7 +84,7 @@ def check_demo_folder(directory: str | Path) -> Path:
 
 DEMO_DESIGN = """\
 # glmeeg demo: alarm urgency at a maritime training centre (invented data).
-# Written by `glmeeg.simulate.write_demo_study`; the planted truth is `glmeeg.simulate.DEMO_TRUTH`.
+# Written by `glmeeg.demo.write_demo_study`; the planted truth is `glmeeg.demo.DEMO_TRUTH`.
 [data]
 trials = "trials.csv"
 subjects = "subjects.csv"
@@ -467,7 +467,7 @@ def _move_into_place(stage: Path, root: Path, earlier: dict[str, str]) -> None:
     import os
     import signal
 
-    from .ownership import digests, relative_files
+    from ..results.ownership import digests, relative_files
 
     names = relative_files(stage)
     listed = {**{f: d for f, d in earlier.items() if (root / f).is_file()}, **digests(stage, names)}
@@ -522,7 +522,7 @@ def _write_demo_files(root: Path, *, n_subjects: int, n_trials: int, seed: int) 
 
 
 def _earlier_demo_files(root: Path) -> dict[str, str]:
-    from .ownership import read_file_list
+    from ..results.ownership import read_file_list
 
     return read_file_list(root / "demo.json", schema_version=_DEMO_LIST_VERSION, kind=DEMO_LIST) or {}
 
@@ -532,7 +532,7 @@ def _write_demo_list(root: Path, files: dict[str, str]) -> None:
     import json
     import os
 
-    from ._version import __version__
+    from .._version import __version__
 
     doc = {"written_by": DEMO_LIST, "schema_version": _DEMO_LIST_VERSION,
            "provenance": {"glmeeg_version": __version__}, "files": dict(sorted(files.items()))}

@@ -15,8 +15,8 @@ import pandas as pd
 import scipy.sparse as sp
 from scipy.spatial import Delaunay, cKDTree
 
-from .errors import GlmeegError, StudyError
-from .sensors import standard_positions
+from ..errors import GlmeegError, StudyError
+from .positions import standard_positions
 
 __all__ = ["SensorGraph", "neighbours_from_positions", "neighbours_from_table", "sensor_graph",
            "LONG_EDGE_FACTOR", "DEFAULT_DISTANCE"]

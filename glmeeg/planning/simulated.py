@@ -1,6 +1,6 @@
 """Simulation-based power of the real design, from a saved result (pilot data or an earlier study).
 
-:func:`glmeeg.power.solve_power` answers "how many participants?" for one test with a normal
+:func:`glmeeg.planning.analytic.solve_power` answers "how many participants?" for one test with a normal
 model. A mass-univariate EEG analysis tests thousands of correlated points under a correction
 (max statistic, cluster mass, TFCE ...), for which no closed form exists. Here new studies of
 ``n`` participants are simulated from what a saved test observed -- its effect map and its
@@ -20,11 +20,11 @@ import pandas as pd
 import scipy.stats
 from pydantic import BaseModel, ConfigDict
 
-from .errors import ModelError
-from .inference.corrections import (PERMUTATION_METHODS, TFCE, Bonferroni, ClusterMass, Correction,
+from ..errors import ModelError
+from ..inference.corrections import (PERMUTATION_METHODS, TFCE, Bonferroni, ClusterMass, Correction,
                                     FalseDiscoveryRate, Holm, MaxStatistic, NoCorrection, adjust_p)
-from .power import EEG_TYPICAL_N
-from .results import TestResult
+from .analytic import EEG_TYPICAL_N
+from ..results import TestResult
 
 __all__ = ["CRITERIA", "DetectionRate", "SimulatedPower", "simulate_power"]
 
@@ -239,9 +239,9 @@ def _whole(value, name: str, *, least: int) -> int:
 
 def _points_graph(graph, result: TestResult) -> tuple[tuple[np.ndarray, np.ndarray], str]:
     """The points' neighbour graph as CSR arrays, and how it was obtained."""
-    from .errors import GlmeegError
-    from .inference.graph import map_graph
-    from .neighbours import SensorGraph, sensor_graph
+    from ..errors import GlmeegError
+    from ..inference.graph import map_graph
+    from ..sensors.neighbours import SensorGraph, sensor_graph
 
     P = result.axes.n_points
     channels = result.axes.channels
@@ -314,7 +314,7 @@ def simulate_power(result: TestResult, *, n: int | Sequence[int], simulations: i
         Root seed (>= 0) of the simulation.
     graph : SensorGraph or tuple of numpy.ndarray, optional
         For cluster and TFCE corrections: the sensor graph of the result's channels (e.g. from
-        :func:`glmeeg.neighbours.neighbours_from_table`) or the points graph's ``(indptr,
+        :func:`glmeeg.sensors.neighbours.neighbours_from_table`) or the points graph's ``(indptr,
         indices)`` (``plan_analysis(design).graph``). Default: rebuilt from the 10-10 positions
         of the channel names.
     target : numpy.ndarray of bool, optional
@@ -489,8 +489,8 @@ def simulate_power(result: TestResult, *, n: int | Sequence[int], simulations: i
     target_sign = np.sign(np.nan_to_num(np.asarray(result.statistic, dtype=np.float64)))
 
     # ---- the pilot's effect and noise
-    from .inference.permutation import choose_resampling
-    from .subject_level import fit_ols
+    from ..inference.permutation import choose_resampling
+    from ..subject_level.ols import fit_ols
 
     fit = fit_ols(G, Y.reshape(n0, k * P))
     fitted = (G @ fit.betas).reshape(n0, k, P)
@@ -560,7 +560,7 @@ def _statistic(Y: np.ndarray, G: np.ndarray, L: np.ndarray) -> np.ndarray:
     effect-size intervals that take most of its time on large maps (same formulas, QR)."""
     import scipy.linalg
 
-    from .subject_level import _conditioning
+    from ..subject_level.ols import _conditioning
 
     n, k, P = Y.shape
     q, m = G.shape[1], L.shape[0]
@@ -589,7 +589,7 @@ def _statistic(Y: np.ndarray, G: np.ndarray, L: np.ndarray) -> np.ndarray:
 def _analyse(Y, G, L, *, method, trim, alternative, correction, seed, graph,
              memory_limit) -> tuple[np.ndarray, np.ndarray]:
     """The statistic and corrected p of one simulated study, as the pilot's test computes them."""
-    from .group_level import p_values
+    from ..group_level.glm import p_values
 
     n, k, _ = Y.shape
     if method == "glm":
@@ -598,14 +598,14 @@ def _analyse(Y, G, L, *, method, trim, alternative, correction, seed, graph,
         p = p_values(stat, kind, df, alternative=alternative)
         extra = {}
     else:
-        from .group_robust import trimmed_test, welch_test
+        from ..group_level.robust import trimmed_test, welch_test
         stats = (trimmed_test(Y[:, 0], G, L, trim=trim, alternative=alternative) if method == "trimmed"
                  else welch_test(Y[:, 0], G, L, alternative=alternative))
         kind, df, stat, p = "t", stats.df, stats.statistic, stats.p
         extra = {"method": method, "trim": trim}
     if correction.method not in PERMUTATION_METHODS:
         return stat, adjust_p(p, correction)
-    from .inference.permutation import permutation_test
+    from ..inference.permutation import permutation_test
     perm = permutation_test(Y, G, L, kind=kind, df=df, alternative=alternative,
                             correction=correction.model_copy(update={"seed": seed}), graph=graph,
                             memory_limit=memory_limit, **extra)

@@ -25,8 +25,8 @@ from __future__ import annotations
 import numpy as np
 import scipy.stats
 
-from .errors import ModelError
-from .group_level import GroupStatistics, p_values, unusable_variance
+from ..errors import ModelError
+from .glm import GroupStatistics, p_values, unusable_variance
 
 __all__ = ["GROUP_METHODS", "group_layout", "trimmed_test", "welch_test", "winsorized_normal_sd"]
 

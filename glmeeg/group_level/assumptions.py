@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.stats
 
-from .subject_level import fit_ols
+from ..subject_level.ols import fit_ols
 
 __all__ = ["GroupChecks", "group_checks", "outlying_trials", "robust_z"]
 
