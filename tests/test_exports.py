@@ -12,7 +12,8 @@ from typer.testing import CliRunner
 import glmeeg
 from conftest import write_study
 from glmeeg.cli import app
-from glmeeg.results import _ARRAYS, _OPTIONAL_ARRAYS, load_netcdf, read_netcdf, summary_schema
+from glmeeg.results import load_netcdf, read_netcdf, summary_schema
+from glmeeg.results.models import _ARRAYS, _OPTIONAL_ARRAYS
 
 xr = pytest.importorskip("xarray")
 pytest.importorskip("h5netcdf")
@@ -110,7 +111,7 @@ def test_netcdf_keeps_nan_bits_and_replaces_atomically(runs, tmp_path):
     t = runs["ct"][0].test("condition")
     p = np.array(t.p, copy=True)
     p[:3] = [np.nan, -np.nan, -0.0]
-    nan_result = t.model_copy(update={"p": glmeeg.results._frozen_array(p)})
+    nan_result = t.model_copy(update={"p": glmeeg.results.models._frozen_array(p)})
     path = tmp_path / "t.nc"
     t.to_netcdf(path)  # an earlier export of glmeeg's is replaced
     nan_result.to_netcdf(path)

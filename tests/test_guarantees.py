@@ -51,7 +51,7 @@ seed = {seed}
 # Runs the CLI in a child that SIGKILLs itself at a chosen moment of write_run.
 KILL_DURING_WRITE = """\
 import os, signal, sys
-import glmeeg.results as R
+import glmeeg.results as R, glmeeg.results.store as S
 moment = sys.argv[3]
 def die():
     os.kill(os.getpid(), signal.SIGKILL)
@@ -62,17 +62,17 @@ if moment == "writing":            # after the first test folder is written
         die()
     R.TestResult.save = save
 elif moment == "between-renames":  # the two-rename swap, killed between its renames
-    R._exchange = lambda a, b: False
+    S._exchange = lambda a, b: False
     original_replace = os.replace
     def replace(src, dst):
         original_replace(src, dst)
         if str(dst).endswith(".old"):
             die()
-    R.os.replace = replace
+    S.os.replace = replace
 elif moment == "after-swap":       # swapped in, the earlier results not yet removed
     def rmtree(path, ignore_errors=False):
         die()
-    R.shutil.rmtree = rmtree
+    S.shutil.rmtree = rmtree
 sys.argv = ["glmeeg", "run", sys.argv[1], "--out", sys.argv[2], "-q", "--no-report"]
 import glmeeg.cli as cli
 cli.main()

@@ -13,7 +13,7 @@ from typer.testing import CliRunner
 import glmeeg
 from conftest import write_study
 from glmeeg.cli import app
-from glmeeg.results import _ARRAYS, _OPTIONAL_ARRAYS
+from glmeeg.results.models import _ARRAYS, _OPTIONAL_ARRAYS
 
 # Every array a result may hold; the optional ones are None for some corrections.
 ALL_ARRAYS = _ARRAYS + _OPTIONAL_ARRAYS

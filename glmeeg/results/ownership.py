@@ -199,7 +199,8 @@ def _is_glmeeg_file(path: Path, kind: str) -> bool:
             doc = json.loads(path.read_bytes().decode("utf-8"))
             return isinstance(doc, dict) and str(doc.get("$id", "")).startswith("urn:glmeeg:schema:")
         if kind == "run-summary":
-            from . import RUN_LIST, SCHEMA_VERSION
+            from .models import SCHEMA_VERSION
+            from .store import RUN_LIST
 
             return read_file_list(path, schema_version=SCHEMA_VERSION, kind=RUN_LIST) is not None
         if kind == "netcdf":
