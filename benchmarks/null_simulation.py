@@ -49,7 +49,7 @@ from glmeeg.inference.graph import graph_arrays, points_graph
 from glmeeg.inference.permutation import permutation_test
 from glmeeg.sensors.neighbours import sensor_graph
 from glmeeg.sensors import standard_positions
-from glmeeg.demo import CHANNELS
+from glmeeg.demo.study import CHANNELS
 
 ALPHA = 0.05
 N_TIMES = 100

@@ -21,7 +21,7 @@ from glmeeg.sensors.neighbours import (LONG_EDGE_FACTOR, SensorGraph, neighbours
 from glmeeg.sensors import standard_position, standard_positions
 from glmeeg.study import read_neighbour_table
 
-# The demo's 32-channel cap (glmeeg.demo.CHANNELS).
+# The demo's 32-channel cap (glmeeg.demo.study.CHANNELS).
 DEMO32 = ("Fp1 Fp2 AF3 AF4 F7 F3 Fz F4 F8 FC5 FC1 FC2 FC6 T7 C3 Cz C4 T8 CP5 CP1 CP2 CP6 "
           "P7 P3 Pz P4 P8 PO3 PO4 O1 Oz O2").split()
 

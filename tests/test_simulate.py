@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from glmeeg import demo as simulate
+from glmeeg.demo import study as simulate
 from glmeeg.sensors import standard_position
 from glmeeg.demo import DEMO_DESIGN, DEMO_TRUTH, write_demo_study
 from glmeeg.spec import load_design
