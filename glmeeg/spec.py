@@ -234,18 +234,6 @@ class TestSpec(_Strict):
                                      f"{self.correction!r}")
         return self
 
-    def correction_settings(self):
-        """The correction's settings object (:mod:`glmeeg.inference.corrections`)."""
-        from .inference.corrections import correction_from_name
-
-        given = {"permutations": self.permutations, "seed": self.seed, "resampling": self.resampling,
-                 "threshold": self.cluster_threshold, "statistic": self.cluster_statistic,
-                 "extent_exponent": self.tfce_extent_exponent,
-                 "height_exponent": self.tfce_height_exponent}
-        if self.correction not in ("max", "cluster", "tfce"):
-            return correction_from_name(self.correction)  # the seed may belong to the bootstrap
-        return correction_from_name(self.correction, **{k: v for k, v in given.items() if v is not None})
-
     @field_validator("name")
     @classmethod
     def _safe_name(cls, v: str) -> str:

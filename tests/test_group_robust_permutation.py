@@ -343,7 +343,7 @@ def test_design_file_runs_robust_tests_with_tfce_cluster_and_max(tmp_path):
         np.testing.assert_array_equal(result.statistic, stats.statistic)
         # The same call outside the pipeline gives the same p (the pipeline hands it the method).
         direct = permutation_test(Y, G, L, kind="t", df=stats.df, method=test.spec.group_method,
-                                  trim=0.25, correction=test.spec.correction_settings(), graph=plan.graph)
+                                  trim=0.25, correction=test.correction, graph=plan.graph)
         np.testing.assert_array_equal(result.p_corrected, direct.p_corrected)
         np.testing.assert_array_equal(result.p_permutation, direct.p_uncorrected)
         if test.spec.correction == "cluster":

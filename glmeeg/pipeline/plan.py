@@ -13,7 +13,7 @@ import numpy as np
 
 from ..errors import ModelError, StudyError
 from ..formula import ContrastMatrix, Design, DesignMatrix, build_design, contrast_matrix, design_matrix
-from ..inference.corrections import PERMUTATION_METHODS
+from ..inference.corrections import PERMUTATION_METHODS, Correction, correction_from_name
 from ..spec import DesignSpec, TestSpec, load_design
 from ..study import Study, read_study
 
@@ -32,6 +32,7 @@ class TestPlan:
     subjects: tuple[str, ...]
     group_contrast: ContrastMatrix
     notes: tuple[str, ...]
+    correction: Correction
     resampling: str | None = None
 
 
@@ -70,7 +71,7 @@ class AnalysisPlan:
         for t in self.tests:
             kind = "t" if t.subject_contrast.n_rows == 1 and t.group_contrast.n_rows == 1 else "F"
             lines.append(f"test {t.spec.name}: {kind} test, {len(t.subjects)} subjects, "
-                         f"{t.spec.correction_settings().describe()}, alpha {t.spec.alpha:g}, "
+                         f"{t.correction.describe()}, alpha {t.spec.alpha:g}, "
                          f"{t.spec.alternative}" + (f"; resampling: {t.resampling}" if t.resampling else ""))
             for lab, row in zip(t.subject_contrast.labels, t.subject_contrast.matrix):
                 lines.append(f"  subject contrast {lab}: {_weights(self.subject_design.column_names, row)}")
@@ -84,6 +85,17 @@ class AnalysisPlan:
                          f"{self.graph[1].size // 2} point pairs")
         lines += [f"warning: {w}" for w in self.warnings]
         return "\n".join(lines)
+
+
+def correction_of(test: TestSpec) -> Correction:
+    """The settings object of a test's correction (:mod:`glmeeg.inference.corrections`), from the
+    design file's ``correction`` and its keys."""
+    given = {"permutations": test.permutations, "seed": test.seed, "resampling": test.resampling,
+             "threshold": test.cluster_threshold, "statistic": test.cluster_statistic,
+             "extent_exponent": test.tfce_extent_exponent, "height_exponent": test.tfce_height_exponent}
+    if test.correction not in PERMUTATION_METHODS:
+        return correction_from_name(test.correction)  # the seed may belong to the bootstrap
+    return correction_from_name(test.correction, **{k: v for k, v in given.items() if v is not None})
 
 
 def _weights(names, row) -> str:
@@ -186,7 +198,7 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
                          "(common practice); estimates and power may be poor")
         tests.append(TestPlan(spec=t, subject_contrast=sc, group_formula=gformula, group_design=gdesign,
                               group_matrix=gm, subjects=included, group_contrast=gc, notes=tuple(notes),
-                              resampling=scheme))
+                              correction=correction_of(t), resampling=scheme))
     sgraph, graph, extra = None, None, {}
     needs = {t.spec.correction for t in tests} & set(PERMUTATION_METHODS)
     if needs:

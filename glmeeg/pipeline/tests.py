@@ -120,7 +120,7 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
         from ..group_level.bootstrap import bootstrap_interval
         boot = bootstrap_interval(Y[:, 0], **_bootstrap_settings(test))
         extra.update(estimate_low=boot.low, estimate_high=boot.high)
-    correction = test.spec.correction_settings()
+    correction = test.correction
     alpha = test.spec.alpha
     notes = list(test.notes)
     if test.subject_contrast.n_rows == 1:

@@ -27,17 +27,16 @@ import stat
 from pathlib import Path
 
 from ..errors import GlmeegError
+from ..subject_level.cache import CACHE_ENTRY  # the names the cache gives its files
 
 __all__ = ["CACHE_ENTRY", "GENERATOR", "check_replaceable", "describe", "digests", "file_digest",
            "foreign_entries", "read_file_list", "relative_files", "png_is_glmeeg", "unowned_entries"]
 
 # The report's <head> tag and the PNG text glmeeg writes (see report.py and results.py).
 GENERATOR = "glmeeg"
+_DIGEST = re.compile(r"[0-9a-f]{64}")  # a SHA-256 in hex, as file lists hold them
 GENERATOR_TAG = '<meta name="generator" content="glmeeg'
 
-# Names of the subject-fit cache (cache.py): entries, and the temporary files of their writes.
-_DIGEST = re.compile(r"[0-9a-f]{64}")
-CACHE_ENTRY = re.compile(r"[0-9a-f]{64}\.npz|\.[0-9a-f]{16}\.[A-Za-z0-9_]{1,16}\.partial")
 
 # A file list is only read from a run.json of at most this size; a folder is examined up to
 # this many entries (a result folder holds a few per test), so a hostile folder costs little.

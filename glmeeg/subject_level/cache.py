@@ -59,6 +59,8 @@ _ZIP_OVERHEAD_MAX = 4096  # local headers, central directory and end records of 
 _META_FIELDS = frozenset({"format", "subject", "key", "df_resid", "robust_iterations_max",
                           "robust_unconverged_points", "sha256", "shape", "dtype",
                           "unusable_points", "unusable_sha256"})
+# Names of the cache's files: entries, and the temporary files of their writes.
+CACHE_ENTRY = re.compile(r"[0-9a-f]{64}\.npz|\.[0-9a-f]{16}\.[A-Za-z0-9_]{1,16}\.partial")
 _HEX64 = re.compile(r"[0-9a-f]{64}")
 
 # What reading a damaged or foreign file can raise (json's and unicode errors are ValueErrors;
@@ -324,8 +326,6 @@ class FitCache:
         """Remove every entry (and leftover temporary file) whose key is not in ``keep``."""
         if not self.folder.is_dir():
             return
-        from ..results.ownership import CACHE_ENTRY
-
         for p in self.folder.iterdir():
             # Only names the cache gives its entries and their temporary files: never anything else.
             if (CACHE_ENTRY.fullmatch(p.name) and p.is_file() and not p.is_symlink()
