@@ -20,7 +20,8 @@ _PUBLIC = {
     "AnalysisPlan": "pipeline", "fit_subjects": "pipeline", "plan_analysis": "pipeline",
     "run_analysis": "pipeline", "test_group": "pipeline",
     "RunResult": "results", "TestResult": "results", "load_result": "results",
-    "load_run": "results", "write_run": "results",
+    "load_run": "results", "load_test_results": "results", "load_run_folder": "results",
+    "write_run": "results",
     "DesignSpec": "spec", "load_design": "spec", "Study": "study", "read_study": "study",
     "RobustFit": "subject_level", "fit_robust": "subject_level", "SimulatedPower": "planning",
     "simulate_power": "planning", "OLSFit": "subject_level", "fit_ols": "subject_level",
@@ -47,5 +48,5 @@ __all__ = ["__version__", "Axes", "GlmeegError", "DesignFileError", "StudyError"
            "OLSFit", "fit_ols", "GroupStatistics", "group_test", "NoCorrection", "Bonferroni",
            "Holm", "FalseDiscoveryRate", "adjust_p", "AnalysisPlan", "plan_analysis",
            "fit_subjects", "test_group", "run_analysis", "TestResult", "RunResult",
-           "load_result", "load_run", "write_run", "solve_power", "power_curve", "PowerSolution",
+           "load_result", "load_test_results", "load_run_folder", "load_run", "write_run", "solve_power", "power_curve", "PowerSolution",
            "fit_robust", "RobustFit", "simulate_power", "SimulatedPower"]

@@ -30,7 +30,7 @@ from typer.testing import CliRunner
 from conftest import write_study
 from glmeeg.subject_level.cache import CACHE_FOLDER, FitCache
 from glmeeg.cli import app
-from glmeeg.results import load_run
+from glmeeg.results import load_test_results
 from glmeeg.subject_level.jobs import FIT_FORMAT, SubjectFit
 
 # 6 subjects x 12 trials x 3 channels x 5 times: every run takes about a second.
@@ -41,7 +41,7 @@ VICTIM = "s03"
 
 def _arrays(folder: Path) -> dict:
     out = {}
-    for t in load_run(folder):
+    for t in load_test_results(folder):
         for name in ("estimate", "statistic", "p", "p_corrected", "subject_estimates"):
             a = getattr(t, name)
             if a is not None:

@@ -29,7 +29,7 @@ from typer.testing import CliRunner
 from glmeeg.cli import app
 from glmeeg.errors import ExecutionError
 from glmeeg.pipeline import run_analysis
-from glmeeg.results import load_run
+from glmeeg.results import load_test_results
 from glmeeg.demo import write_demo_study
 
 # Two clusters at once (the module's and one a test starts) share the default HTTP port; Dask
@@ -134,7 +134,7 @@ def test_workers_option_starts_a_local_cluster(study, in_process, tmp_path):
     result = CliRunner().invoke(app, ["run", str(study), "--out", str(out), "--workers", "2", "-q",
                                       "--no-report"])
     assert result.exit_code == 0, result.output
-    saved = {t.name: t for t in load_run(out)}
+    saved = {t.name: t for t in load_test_results(out)}
     for t in in_process.tests:
         for name in ("statistic", "p_corrected", "null_distribution", "subject_estimates"):
             x = getattr(t, name)

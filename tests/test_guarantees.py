@@ -30,7 +30,7 @@ from typer.testing import CliRunner
 
 from conftest import write_study
 from glmeeg.cli import app
-from glmeeg.results import load_run_result, recover_results
+from glmeeg.results import load_run_folder, recover_results
 
 TESTS = """\
 [[test]]
@@ -85,7 +85,7 @@ def _study(root: Path, seed: int) -> Path:
 
 
 def _seeds(out: Path) -> set:
-    return {t.resampling.seed for t in load_run_result(out).tests}
+    return {t.resampling.seed for t in load_run_folder(out).tests}
 
 
 def _clean(folder: Path) -> list[str]:
@@ -107,7 +107,7 @@ def test_a_run_killed_while_writing_leaves_a_complete_result(tmp_path, moment):
     # The output folder loads as one whole run: the earlier one unless the swap was done.
     expected = {2} if moment == "after-swap" else {1}
     assert _seeds(out) == expected
-    run = load_run_result(out)
+    run = load_run_folder(out)
     assert [t.name for t in run.tests] == ["b-vs-a", "intensity"]
     # The next run cleans up what the killed one left beside the output folder.
     again = runner.invoke(app, ["run", str(design), "--out", str(out), "-q", "--no-report"])

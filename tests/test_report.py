@@ -78,7 +78,7 @@ def test_run_writes_the_report_and_report_rewrites_it(tmp_path):
     page = (out / "report.html").read_text(encoding="utf-8")
     assert "<h2>Methods</h2>" in page and "data:image/png;base64," in page
     assert 'alt="subject-level design of s01' in page
-    back = glmeeg.results.load_run_result(out)
+    back = glmeeg.results.load_run_folder(out)
     assert back.example_design_subject == "s01" and back.example_design.shape == (30, 4)
     (out / "report.html").unlink()
     result = runner.invoke(app, ["report", str(out)])

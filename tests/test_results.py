@@ -65,7 +65,7 @@ def same_bits(a: np.ndarray | None, b: np.ndarray | None) -> bool:
 
 def test_save_load_round_trip_is_lossless(run, tmp_path):
     out = glmeeg.write_run(run, tmp_path / "out")
-    loaded = glmeeg.load_run(out)
+    loaded = glmeeg.load_test_results(out)
     assert [t.name for t in loaded] == [t.name for t in run.tests]
     for t, back in zip(run.tests, loaded):
         for field in ALL_ARRAYS:
@@ -209,3 +209,19 @@ def test_load_errors_are_glmeeg_errors(tmp_path):
     (tmp_path / "result.npz").write_bytes(b"not a zip")
     with pytest.raises(glmeeg.GlmeegError, match="not a glmeeg result file"):
         glmeeg.load_result(tmp_path)
+
+
+def test_the_old_names_of_the_run_loaders_still_work_with_a_deprecation_warning(tmp_path):
+    """load_run (the tests of a folder) and load_run_result (the whole run) were renamed."""
+    import glmeeg
+    from glmeeg.results import load_run_result
+
+    design = write_study(tmp_path / "study", n_subjects=6, n_trials=12, n_channels=2, n_times=4)
+    out = tmp_path / "out"
+    glmeeg.write_run(glmeeg.run_analysis(design), out)
+    with pytest.warns(DeprecationWarning, match="load_test_results"):
+        old = glmeeg.load_run(out)
+    assert [t.name for t in old] == [t.name for t in glmeeg.load_test_results(out)]
+    with pytest.warns(DeprecationWarning, match="load_run_folder"):
+        whole = load_run_result(out)
+    assert whole.tests[0].statistic.tobytes() == glmeeg.load_run_folder(out).tests[0].statistic.tobytes()

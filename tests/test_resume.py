@@ -19,7 +19,7 @@ from typer.testing import CliRunner
 
 from glmeeg.subject_level.cache import CACHE_FOLDER, FitCache
 from glmeeg.cli import app
-from glmeeg.results import load_run
+from glmeeg.results import load_test_results
 
 from conftest import write_study
 
@@ -57,7 +57,7 @@ glmeeg.cli.main()
 
 def _arrays(folder: Path) -> dict:
     out = {}
-    for t in load_run(folder):
+    for t in load_test_results(folder):
         for name in ("estimate", "statistic", "p", "p_corrected", "null_distribution", "subject_estimates"):
             a = getattr(t, name)
             if a is not None:

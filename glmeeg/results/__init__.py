@@ -24,13 +24,13 @@ from .findings import CLUSTER_CAUTION, Cluster
 from .models import (SCHEMA_VERSION, Provenance, Resampling, ResidualChecks, RunResult, SubjectSummary,
                      TestResult)
 from .provenance import provenance
-from .store import (check_output_folder, load_result, load_run, load_run_result, recover_results,
-                    write_report, write_run)
+from .store import (check_output_folder, load_result, load_run, load_run_folder, load_run_result,
+                    load_test_results, recover_results, write_report, write_run)
 from .summary import Summary, summary_schema
 from .text import CAUTION, CLINICAL_CAUTION
 
 __all__ = ["Provenance", "SubjectSummary", "TestResult", "RunResult", "Resampling", "ResidualChecks",
-           "Cluster", "load_result", "load_run", "load_run_result", "write_run", "write_report",
+           "Cluster", "load_result", "load_test_results", "load_run_folder", "load_run", "load_run_result", "write_run", "write_report",
            "recover_results", "write_table", "write_figure", "write_text", "csv_safe", "png_metadata",
            "check_output_folder", "provenance", "CAUTION", "CLINICAL_CAUTION", "CLUSTER_CAUTION",
            "read_netcdf", "load_netcdf", "Summary", "summary_schema", "NETCDF_FORMAT", "SCHEMA_VERSION"]

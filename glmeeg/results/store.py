@@ -7,6 +7,7 @@ import json
 import os
 import shutil
 import tempfile
+import warnings
 import zipfile
 from pathlib import Path
 
@@ -391,7 +392,7 @@ def write_report(folder: str | Path, html: str, *, out: str | Path | None = None
     return path
 
 
-def load_run_result(folder: str | Path) -> RunResult:
+def load_run_folder(folder: str | Path) -> RunResult:
     """Read a whole run folder back as a :class:`RunResult` (``run.json`` and every test)."""
     folder = Path(folder)
     if not folder.exists():
@@ -399,7 +400,7 @@ def load_run_result(folder: str | Path) -> RunResult:
     path = folder / "run.json"
     if not path.is_file():
         raise GlmeegError(f"{folder}: not a glmeeg run folder (no run.json)")
-    tests = tuple(load_run(folder))
+    tests = tuple(load_test_results(folder))
     try:
         meta = json.loads(path.read_text())
         return RunResult(design=meta["design"], subject_formula=meta["subject_formula"],
@@ -414,7 +415,7 @@ def load_run_result(folder: str | Path) -> RunResult:
         raise GlmeegError(f"{path}: unreadable run summary ({_first_line(e)})") from None
 
 
-def load_run(folder: str | Path) -> list[TestResult]:
+def load_test_results(folder: str | Path) -> list[TestResult]:
     """Load every test of a run folder (or the single test of a test folder)."""
     folder = Path(folder)
     if not folder.exists():
@@ -450,3 +451,17 @@ def save_result(result: TestResult, folder: str | Path) -> None:
         csv_safe(result.clusters_frame()).to_csv(folder / "clusters.csv", index=False,
                                                float_format="%.10g")
     (folder / "summary.json").write_text(json.dumps(result.summary(), indent=2, default=_plain) + "\n")
+
+
+def load_run(folder: str | Path) -> list[TestResult]:
+    """Deprecated name of :func:`load_test_results` (kept for one release)."""
+    warnings.warn("glmeeg.load_run is now glmeeg.load_test_results (the tests of a run folder); "
+                  "the old name goes in the next release", DeprecationWarning, stacklevel=2)
+    return load_test_results(folder)
+
+
+def load_run_result(folder: str | Path) -> RunResult:
+    """Deprecated name of :func:`load_run_folder` (kept for one release)."""
+    warnings.warn("glmeeg.results.load_run_result is now glmeeg.load_run_folder (the whole run); "
+                  "the old name goes in the next release", DeprecationWarning, stacklevel=2)
+    return load_run_folder(folder)
