@@ -6,8 +6,9 @@ from __future__ import annotations
 
 import logging
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -16,6 +17,10 @@ from ..formula import ContrastMatrix, Design, DesignMatrix, build_design, contra
 from ..inference.corrections import PERMUTATION_METHODS, Correction, correction_from_name
 from ..spec import DesignSpec, TestSpec, load_design
 from ..study import Study, read_study
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..inference.graph import PointGraph
+    from ..sensors.neighbours import SensorGraph
 
 log = logging.getLogger("glmeeg")
 
@@ -47,9 +52,11 @@ class AnalysisPlan:
     subject_matrices: dict[str, DesignMatrix]
     tests: tuple[TestPlan, ...]
     warnings: tuple[str, ...]
-    sensor_graph: object | None = None
-    graph: tuple[np.ndarray, np.ndarray] | None = None
-    extra_inputs: dict | None = None
+    # The sensors' neighbours and the graph of points, for cluster and TFCE corrections.
+    sensor_graph: SensorGraph | None = None
+    graph: PointGraph | None = None
+    # Input files beyond the study's (the neighbour table), for the provenance.
+    extra_inputs: dict[str, Path] = field(default_factory=dict)
 
     def describe(self) -> str:
         """What will be done, as readable text (``glmeeg check``)."""
@@ -138,67 +145,7 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
         if X.condition_number > 1e8:
             warnings.append(f"subject {s}: design condition number {X.condition_number:.3g}; estimates "
                             "may be unstable (rescale or centre covariates)")
-    subj_table = study.subjects
-    tests = []
-    for t in spec.test:
-        where = f"test {t.name!r}"
-        sc = contrast_matrix(sdesign, t.subject_contrast, where=f"{where}: subject_contrast")
-        gformula = t.group_formula or spec.group_model.formula
-        gsource = spec.data.subjects or "the subjects (no subjects table)"
-        gdesign = build_design(subj_table, gformula, levels=spec.group_model.levels, source=gsource,
-                               where=f"{where}: group formula")
-        gm = design_matrix(gdesign, subj_table, who=f"{where}: group design")
-        included = tuple(np.asarray(study.subject_ids)[gm.kept])
-        gc = contrast_matrix(gdesign, t.group_contrast, where=f"{where}: group_contrast")
-        notes = []
-        if gm.condition_number > 1e8:
-            warnings.append(f"{where}: group design condition number {gm.condition_number:.3g}; "
-                            "estimates may be unstable (rescale or centre covariates such as age)")
-        if gm.n_dropped:
-            notes.append(f"{gm.n_dropped} subject(s) left out for missing values in {gformula}: "
-                         f"{', '.join(np.asarray(study.subject_ids)[~gm.kept])}")
-        n, q = gm.matrix.shape
-        k, m = sc.n_rows, gc.n_rows
-        if k > 1 and m > 1:
-            raise ModelError(f"{where}: a joint test over {k} subject contrasts takes one group "
-                             f"contrast; got {m}")
-        needed = q + k if k > 1 else q + 1
-        if n < needed:
-            raise ModelError(f"{where}: {n} subjects for a group model with {q} column(s)"
-                             f"{f' and {k} joint subject contrasts' if k > 1 else ''}; at least "
-                             f"{needed} are needed")
-        if (k > 1 or m > 1) and t.alternative != "two-sided":
-            raise ModelError(f"{where}: alternative {t.alternative!r} applies to t tests only; this "
-                             "is an F test (use two-sided)")
-        if t.bootstrap:
-            from ..group_level.robust import group_layout
-            if k > 1:
-                raise ModelError(f"{where}: bootstrap intervals take one subject contrast")
-            try:
-                group_layout(gm.matrix, gc.matrix, method="bootstrap")
-            except ModelError as e:
-                raise ModelError(f"{where}: {e}") from None
-        if t.group_method != "glm":
-            from ..group_level.robust import group_layout
-            if k > 1:
-                raise ModelError(f"{where}: group_method {t.group_method!r} takes one subject contrast")
-            try:
-                group_layout(gm.matrix, gc.matrix, method=t.group_method)
-            except ModelError as e:
-                raise ModelError(f"{where}: {e}") from None
-        scheme = None
-        if t.correction in PERMUTATION_METHODS:
-            from ..inference.permutation import choose_resampling
-            try:
-                scheme = choose_resampling(gm.matrix, gc.matrix, requested=t.resampling or "auto")
-            except ModelError as e:
-                raise ModelError(f"{where}: {e}") from None
-        if n < 16:
-            notes.append(f"{n} subjects: fewer than the 16-32 common in EEG group studies "
-                         "(common practice); estimates and power may be poor")
-        tests.append(TestPlan(spec=t, subject_contrast=sc, group_formula=gformula, group_design=gdesign,
-                              group_matrix=gm, subjects=included, group_contrast=gc, notes=tuple(notes),
-                              correction=correction_of(t), resampling=scheme))
+    tests = [_plan_test(t, spec, study, sdesign, warnings) for t in spec.test]
     sgraph, graph, extra = None, None, {}
     needs = {t.spec.correction for t in tests} & set(PERMUTATION_METHODS)
     if needs:
@@ -209,7 +156,70 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
                         sensor_graph=sgraph, graph=graph, extra_inputs=extra)
 
 
-def _neighbour_graph(spec: DesignSpec, study: Study, root, *, required: bool, warnings: list):
+def _plan_test(t: TestSpec, spec: DesignSpec, study: Study, sdesign: Design, warnings: list) -> TestPlan:
+    """One test's contrasts, group design and resampling scheme, every error named with the test."""
+    where = f"test {t.name!r}"
+    sc = contrast_matrix(sdesign, t.subject_contrast, where=f"{where}: subject_contrast")
+    gformula = t.group_formula or spec.group_model.formula
+    gsource = spec.data.subjects or "the subjects (no subjects table)"
+    gdesign = build_design(study.subjects, gformula, levels=spec.group_model.levels, source=gsource,
+                           where=f"{where}: group formula")
+    gm = design_matrix(gdesign, study.subjects, who=f"{where}: group design")
+    included = tuple(np.asarray(study.subject_ids)[gm.kept])
+    gc = contrast_matrix(gdesign, t.group_contrast, where=f"{where}: group_contrast")
+    notes = []
+    if gm.condition_number > 1e8:
+        warnings.append(f"{where}: group design condition number {gm.condition_number:.3g}; "
+                        "estimates may be unstable (rescale or centre covariates such as age)")
+    if gm.n_dropped:
+        notes.append(f"{gm.n_dropped} subject(s) left out for missing values in {gformula}: "
+                     f"{', '.join(np.asarray(study.subject_ids)[~gm.kept])}")
+    n, q = gm.matrix.shape
+    k, m = sc.n_rows, gc.n_rows
+    if k > 1 and m > 1:
+        raise ModelError(f"{where}: a joint test over {k} subject contrasts takes one group "
+                         f"contrast; got {m}")
+    needed = q + k if k > 1 else q + 1
+    if n < needed:
+        raise ModelError(f"{where}: {n} subjects for a group model with {q} column(s)"
+                         f"{f' and {k} joint subject contrasts' if k > 1 else ''}; at least "
+                         f"{needed} are needed")
+    if (k > 1 or m > 1) and t.alternative != "two-sided":
+        raise ModelError(f"{where}: alternative {t.alternative!r} applies to t tests only; this "
+                         "is an F test (use two-sided)")
+    if t.bootstrap:
+        from ..group_level.robust import group_layout
+        if k > 1:
+            raise ModelError(f"{where}: bootstrap intervals take one subject contrast")
+        try:
+            group_layout(gm.matrix, gc.matrix, method="bootstrap")
+        except ModelError as e:
+            raise ModelError(f"{where}: {e}") from None
+    if t.group_method != "glm":
+        from ..group_level.robust import group_layout
+        if k > 1:
+            raise ModelError(f"{where}: group_method {t.group_method!r} takes one subject contrast")
+        try:
+            group_layout(gm.matrix, gc.matrix, method=t.group_method)
+        except ModelError as e:
+            raise ModelError(f"{where}: {e}") from None
+    scheme = None
+    if t.correction in PERMUTATION_METHODS:
+        from ..inference.permutation import choose_resampling
+        try:
+            scheme = choose_resampling(gm.matrix, gc.matrix, requested=t.resampling or "auto")
+        except ModelError as e:
+            raise ModelError(f"{where}: {e}") from None
+    if n < 16:
+        notes.append(f"{n} subjects: fewer than the 16-32 common in EEG group studies "
+                     "(common practice); estimates and power may be poor")
+    return TestPlan(spec=t, subject_contrast=sc, group_formula=gformula, group_design=gdesign,
+                          group_matrix=gm, subjects=included, group_contrast=gc, notes=tuple(notes),
+                          correction=correction_of(t), resampling=scheme)
+
+
+def _neighbour_graph(spec: DesignSpec, study: Study, root, *, required: bool,
+                     warnings: list) -> tuple[SensorGraph | None, PointGraph | None, dict[str, Path]]:
     """Sensor neighbours and the graph of points, for cluster and TFCE corrections."""
     from ..errors import GlmeegError
     from ..inference.graph import map_graph

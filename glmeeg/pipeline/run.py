@@ -74,7 +74,7 @@ def run_analysis(design: str | Path | AnalysisPlan, *, progress: Progress | None
         cache = FitCache(cache)
     check_memory(plan, subject_jobs(plan), limit)
     prov = provenance(design_file=plan.design_file,
-                      inputs={**plan.study.input_files, **(plan.extra_inputs or {})})
+                      inputs={**plan.study.input_files, **plan.extra_inputs})
     before = cache.keys() if cache is not None else set()
     try:
         with open_backend(workers=workers, scheduler=scheduler, client=client) as backend:

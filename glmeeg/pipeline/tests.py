@@ -100,71 +100,95 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
     memory_limit = memory_limit or default_memory_limit()
     idx = [estimates.subjects.index(s) for s in test.subjects]
     Y = estimates.estimates[idx][:, estimates.rows[test.spec.name], :]
-    if test.spec.group_method == "trimmed":
-        from ..group_level.robust import trimmed_test
-        stats = trimmed_test(Y[:, 0], test.group_matrix.matrix, test.group_contrast.matrix,
-                             trim=0.2 if test.spec.trim is None else test.spec.trim,
-                             alternative=test.spec.alternative)
-    elif test.spec.group_method == "welch":
-        from ..group_level.robust import welch_test
-        stats = welch_test(Y[:, 0], test.group_matrix.matrix, test.group_contrast.matrix,
-                           alternative=test.spec.alternative)
-    else:
-        from ..group_level.glm import group_test_in_chunks
-        stats = group_test_in_chunks(Y, test.group_matrix.matrix, test.group_contrast.matrix,
-                                     memory_limit=memory_limit, alternative=test.spec.alternative,
-                                     confidence_level=test.spec.confidence_level)
-    has_interval = bool(np.isfinite(stats.effect_size_low).any())
+    stats = _statistics(Y, test, memory_limit)
     extra: dict = {}
     if test.spec.bootstrap:
         from ..group_level.bootstrap import bootstrap_interval
         boot = bootstrap_interval(Y[:, 0], **_bootstrap_settings(test))
         extra.update(estimate_low=boot.low, estimate_high=boot.high)
-    correction = test.correction
-    alpha = test.spec.alpha
     notes = list(test.notes)
     if test.subject_contrast.n_rows == 1:
         extra.update(_residual_checks(Y[:, 0], test, notes))
-    if correction.method in PERMUTATION_METHODS:
-        from ..inference.permutation import permutation_test
-
-        perm = permutation_test(Y, test.group_matrix.matrix, test.group_contrast.matrix,
-                                kind=stats.kind, df=stats.df, alternative=test.spec.alternative,
-                                correction=correction, graph=plan.graph, method=test.spec.group_method,
-                                trim=0.2 if test.spec.trim is None else test.spec.trim,
-                                memory_limit=memory_limit, backend=backend, progress=progress,
-                                task=f"test {test.spec.name}: resamplings")
+    perm = None
+    if test.correction.method in PERMUTATION_METHODS:
+        perm = _resampled(plan, test, Y, stats, extra, notes, memory_limit=memory_limit,
+                          backend=backend, progress=progress)
         p_corr = perm.p_corrected
-        significant = np.nan_to_num(p_corr, nan=1.0) <= alpha
-        labels, p_by_id, kind = None, {}, "region"
-        if perm.cluster_labels is not None:
-            labels, kind = perm.cluster_labels, "cluster"
-            p_by_id = {c["id"]: c["p"] for c in perm.clusters}
-        elif plan.graph is not None:
-            labels = significant_regions(significant, np.nan_to_num(stats.statistic), plan.graph)
-            for cid in range(1, int(labels.max()) + 1):
-                p_by_id[cid] = float(np.nanmin(p_corr[labels == cid]))
-        if labels is not None:
-            extra["cluster"] = labels
-            clusters = describe_clusters(labels, np.nan_to_num(stats.statistic), plan.study.axes,
-                                         p_by_id, alpha=alpha, kind=kind)
-            extra["clusters"] = _cluster_effect_sizes(clusters, labels, Y, test)
-            if test.spec.bootstrap:
-                extra["clusters"] = _cluster_bootstrap(extra["clusters"], labels, Y, test)
-        extra.update(p_permutation=perm.p_uncorrected, null_distribution=perm.null_distribution,
-                     resampling=Resampling(scheme=perm.scheme, n_resamplings=perm.n_resamplings,
-                                           exhaustive=perm.exhaustive, seed=perm.seed,
-                                           cluster_threshold=perm.threshold))
-        if perm.enhanced is not None:
-            extra["tfce"] = perm.enhanced
-        if perm.exhaustive:
-            smallest = 1.0 / perm.n_resamplings
-            notes.append(f"all {perm.n_resamplings} possible resamplings were used; the smallest "
-                         f"possible p is {smallest:.3g}"
-                         + (f", above alpha {alpha:g}: nothing can be significant" if smallest > alpha else ""))
     else:
-        p_corr = adjust_p(stats.p, correction)
-        significant = np.nan_to_num(p_corr, nan=1.0) <= alpha
+        p_corr = adjust_p(stats.p, test.correction)
+    significant = np.nan_to_num(p_corr, nan=1.0) <= test.spec.alpha
+    if perm is not None:
+        extra.update(_clusters(plan, test, Y, stats, p_corr, significant, perm))
+    return _test_result(plan, test, Y, stats, p_corr, significant, extra, notes, prov)
+
+
+def _statistics(Y: np.ndarray, test: TestPlan, memory_limit: int):
+    """The group statistic of a test's method at every point."""
+    if test.spec.group_method == "trimmed":
+        from ..group_level.robust import trimmed_test
+        return trimmed_test(Y[:, 0], test.group_matrix.matrix, test.group_contrast.matrix,
+                            trim=0.2 if test.spec.trim is None else test.spec.trim,
+                            alternative=test.spec.alternative)
+    if test.spec.group_method == "welch":
+        from ..group_level.robust import welch_test
+        return welch_test(Y[:, 0], test.group_matrix.matrix, test.group_contrast.matrix,
+                          alternative=test.spec.alternative)
+    from ..group_level.glm import group_test_in_chunks
+    return group_test_in_chunks(Y, test.group_matrix.matrix, test.group_contrast.matrix,
+                                memory_limit=memory_limit, alternative=test.spec.alternative,
+                                confidence_level=test.spec.confidence_level)
+
+
+def _resampled(plan: AnalysisPlan, test: TestPlan, Y: np.ndarray, stats, extra: dict, notes: list, *,
+               memory_limit: int, backend, progress):
+    """The permutation test of a resampling correction; its maps and facts go into ``extra``,
+    its notes into ``notes``."""
+    from ..inference.permutation import permutation_test
+
+    perm = permutation_test(Y, test.group_matrix.matrix, test.group_contrast.matrix,
+                            kind=stats.kind, df=stats.df, alternative=test.spec.alternative,
+                            correction=test.correction, graph=plan.graph, method=test.spec.group_method,
+                            trim=0.2 if test.spec.trim is None else test.spec.trim,
+                            memory_limit=memory_limit, backend=backend, progress=progress,
+                            task=f"test {test.spec.name}: resamplings")
+    extra.update(p_permutation=perm.p_uncorrected, null_distribution=perm.null_distribution,
+                 resampling=Resampling(scheme=perm.scheme, n_resamplings=perm.n_resamplings,
+                                       exhaustive=perm.exhaustive, seed=perm.seed,
+                                       cluster_threshold=perm.threshold))
+    if perm.enhanced is not None:
+        extra["tfce"] = perm.enhanced
+    if perm.exhaustive:
+        smallest, alpha = 1.0 / perm.n_resamplings, test.spec.alpha
+        notes.append(f"all {perm.n_resamplings} possible resamplings were used; the smallest "
+                     f"possible p is {smallest:.3g}"
+                     + (f", above alpha {alpha:g}: nothing can be significant" if smallest > alpha else ""))
+    return perm
+
+
+def _clusters(plan: AnalysisPlan, test: TestPlan, Y: np.ndarray, stats, p_corr: np.ndarray,
+              significant: np.ndarray, perm) -> dict:
+    """Cluster labels and described clusters (or regions of significant points) of a test."""
+    labels, p_by_id, kind = None, {}, "region"
+    if perm.cluster_labels is not None:
+        labels, kind = perm.cluster_labels, "cluster"
+        p_by_id = {c["id"]: c["p"] for c in perm.clusters}
+    elif plan.graph is not None:
+        labels = significant_regions(significant, np.nan_to_num(stats.statistic), plan.graph)
+        for cid in range(1, int(labels.max()) + 1):
+            p_by_id[cid] = float(np.nanmin(p_corr[labels == cid]))
+    if labels is None:
+        return {}
+    clusters = describe_clusters(labels, np.nan_to_num(stats.statistic), plan.study.axes,
+                                 p_by_id, alpha=test.spec.alpha, kind=kind)
+    clusters = _cluster_effect_sizes(clusters, labels, Y, test)
+    if test.spec.bootstrap:
+        clusters = _cluster_bootstrap(clusters, labels, Y, test)
+    return {"cluster": labels, "clusters": clusters}
+
+
+def _test_result(plan: AnalysisPlan, test: TestPlan, Y: np.ndarray, stats, p_corr: np.ndarray,
+                 significant: np.ndarray, extra: dict, notes: list, prov: Provenance) -> TestResult:
+    has_interval = bool(np.isfinite(stats.effect_size_low).any())
     labels = test.subject_contrast.labels if test.subject_contrast.n_rows > 1 else test.group_contrast.labels
     if test.subject_contrast.n_rows == 1 and test.group_contrast.n_rows == 1:
         labels = (f"{test.subject_contrast.labels[0]} | {test.group_contrast.labels[0]}",)
@@ -175,7 +199,7 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
                       group_formula=test.group_formula, group_columns=test.group_design.column_names,
                       group_contrast=test.group_contrast.matrix,
                       group_contrast_labels=test.group_contrast.labels, df=stats.df,
-                      alternative=stats.alternative, alpha=test.spec.alpha, correction=correction,
+                      alternative=stats.alternative, alpha=test.spec.alpha, correction=test.correction,
                       estimate=stats.estimate, estimate_labels=tuple(labels),
                       standard_error=stats.standard_error, statistic=stats.statistic, p=stats.p,
                       p_corrected=p_corr, significant=significant, effect_size=stats.effect_size,
