@@ -22,16 +22,24 @@ from pydantic import BaseModel, ConfigDict
 
 from ..errors import ModelError
 from ..inference.corrections import (PERMUTATION_METHODS, TFCE, Bonferroni, ClusterMass, Correction,
-                                    FalseDiscoveryRate, Holm, MaxStatistic, NoCorrection, adjust_p)
-from .analytic import EEG_TYPICAL_N
+                                     FalseDiscoveryRate, Holm, MaxStatistic, NoCorrection, adjust_p)
 from ..results import TestResult
-
-__all__ = ["CRITERIA", "DetectionRate", "SimulatedPower", "simulate_power"]
+from .analytic import EEG_TYPICAL_N
+from .pilot import (PilotLayout, pilot_arrays, pilot_layout, points_graph_of, positive_number,
+                    sample_sizes, target_region, whole_number)
 
 # What counts as detecting the effect in one simulated study.
 CRITERIA = ("any", "target")
+
+
 _CRITERION_TEXT = {"any": "any significant point", "target": "significant in the target region"}
+
+__all__ = ["CRITERIA", "DetectionRate", "SimulatedPower", "simulate_power"]
+
+
 _SETTINGS = (NoCorrection, Bonferroni, Holm, FalseDiscoveryRate, MaxStatistic, ClusterMass, TFCE)
+
+
 # Redraws of a resampled group design that is not of full column rank, before giving up.
 _MAX_REDRAWS = 100
 
@@ -183,95 +191,12 @@ class SimulatedPower(_Frozen):
         return "\n".join(lines)
 
 
-@dataclass(frozen=True)
-class _Layout:
-    """Which pilot subjects a simulated subject may be drawn from."""
-
-    kind: Literal["one-sample", "groups", "regression"]
-    members: tuple[np.ndarray, ...]   # pilot subject indices of each group (one array without groups)
-    labels: tuple[str, ...]
-
-    def total(self, n: int) -> int:
-        return n * len(self.members) if self.kind == "groups" else n
-
-    def draw(self, n: int, rng: np.random.Generator) -> np.ndarray:
-        if self.kind == "groups":
-            return np.concatenate([m[rng.integers(0, m.size, size=n)] for m in self.members])
-        m = self.members[0]
-        return m[rng.integers(0, m.size, size=n)]
-
-
-def _layout(G: np.ndarray, columns: Sequence[str]) -> _Layout:
-    """One sample, groups (distinct rows of the design's indicator columns) or a regression."""
-    n0 = G.shape[0]
-    constant = np.ptp(G, axis=0) == 0
-    if constant.all():
-        return _Layout("one-sample", (np.arange(n0),), ("all",))
-    indicator = [j for j in range(G.shape[1]) if not constant[j]
-                 and np.isin(np.unique(G[:, j]), (-1.0, 0.0, 1.0)).all()]
-    if not indicator:
-        return _Layout("regression", (np.arange(n0),), ("all",))
-    keys, inverse = np.unique(G[:, indicator], axis=0, return_inverse=True)
-    members = tuple(np.flatnonzero(inverse.ravel() == g) for g in range(keys.shape[0]))
-    labels = tuple(", ".join(f"{columns[j]} = {v:g}" for j, v in zip(indicator, key)) for key in keys)
-    return _Layout("groups", members, labels)
-
-
 def _kind_and_df(k: int, m: int, n: int, q: int) -> tuple[Literal["t", "F"], tuple[float, float]]:
     if k == 1 and m == 1:
         return "t", (1.0, float(n - q))
     if k == 1:
         return "F", (float(m), float(n - q))
     return "F", (float(k), float(n - q - k + 1))
-
-
-def _whole(value, name: str, *, least: int) -> int:
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise ModelError(f"{name}: expected a whole number, got {value!r}") from None
-    if not math.isfinite(v) or v != int(v) or isinstance(value, bool):
-        raise ModelError(f"{name}: expected a whole number, got {value!r}")
-    if v < least:
-        raise ModelError(f"{name}: expected at least {least}, got {int(v)}")
-    return int(v)
-
-
-def _points_graph(graph, result: TestResult) -> tuple[tuple[np.ndarray, np.ndarray], str]:
-    """The points' neighbour graph as CSR arrays, and how it was obtained."""
-    from ..errors import GlmeegError
-    from ..inference.graph import map_graph
-    from ..sensors.neighbours import SensorGraph, sensor_graph
-
-    P = result.axes.n_points
-    channels = result.axes.channels
-    if graph is None:
-        try:
-            sg = sensor_graph(pd.DataFrame({"name": list(channels)}), sensors_label="the saved result")
-        except GlmeegError:
-            raise ModelError("graph: the neighbour graph cannot be rebuilt from the channel names (not all "
-                             "are 10-10 names); pass the pilot's neighbour table (on the command line "
-                             "--neighbours FILE, written by 'glmeeg neighbours DESIGN --out FILE')") from None
-        how = (f"{sg.method}, rebuilt from the channel names (the pilot may have used another graph: "
-               "pass its neighbour table to use exactly it)")
-    elif isinstance(graph, SensorGraph):
-        if tuple(graph.channels) != tuple(channels):
-            raise ModelError("graph: the sensor graph's channels differ from the result's "
-                             f"({len(graph.channels)} vs {len(channels)} channels, or another order)")
-        sg, how = graph, graph.method
-    else:
-        try:
-            indptr, indices = (np.ascontiguousarray(a, dtype=np.int64) for a in graph)
-        except (TypeError, ValueError):
-            raise ModelError("graph: expected a SensorGraph or the points graph's (indptr, indices) "
-                             f"arrays, got {type(graph).__name__}") from None
-        if indptr.ndim != 1 or indptr.size != P + 1 or indices.ndim != 1 or indptr[-1] != indices.size \
-                or (indices.size and (indices.min() < 0 or indices.max() >= P)):
-            raise ModelError(f"graph: (indptr, indices) do not describe a graph of the result's {P} points")
-        return (indptr, indices), "the points graph given"
-    if sg.isolated:
-        how += f"; {len(sg.isolated)} sensor(s) without neighbours: {', '.join(sg.isolated)}"
-    return map_graph(sg.adjacency(), result.axes.shape), how
 
 
 def _wilson(k: int, n: int, level: float) -> tuple[float, float]:
@@ -398,95 +323,30 @@ def simulate_power(result: TestResult, *, n: int | Sequence[int], simulations: i
     >>> sim = simulate_power(pilot, n=[12, 16, 24, 32], effect_scale=0.7)  # doctest: +SKIP
     >>> sim.to_frame()                                                     # doctest: +SKIP
     """
-    # ---- the pilot
-    if not isinstance(result, TestResult):
-        raise ModelError(f"result: expected a saved test (glmeeg.load_result), got {type(result).__name__}")
-    if result.subject_estimates is None or result.group_design is None:
-        raise ModelError(f"result: test {result.name!r} holds no subject-level estimates (saved by an "
-                         "earlier glmeeg version); re-run the analysis with this version to simulate from it")
-    Y = np.asarray(result.subject_estimates, dtype=np.float64)
-    G = np.asarray(result.group_design, dtype=np.float64)
-    L = np.atleast_2d(np.asarray(result.group_contrast, dtype=np.float64))
-    P = result.axes.n_points
-    n0 = len(result.subjects)
-    k = Y.shape[1] if Y.ndim == 3 else 0
-    if Y.shape != (n0, k, P) or G.shape != (n0, len(result.group_columns)) or L.shape[1] != G.shape[1]:
-        raise ModelError(f"result: test {result.name!r} has inconsistent arrays (subject estimates "
-                         f"{Y.shape}, group design {G.shape}, group contrast {L.shape})")
+    Y, G, L = pilot_arrays(result)
+    n0, k, P = Y.shape
     q = G.shape[1]
     method = result.spec.group_method
     trim = 0.2 if result.spec.trim is None else result.spec.trim
-    layout = _layout(G, result.group_columns)
-
-    # ---- settings
-    if isinstance(n, (int, np.integer, float)) and not isinstance(n, bool):
-        n = [n]
-    try:
-        values = list(n)
-    except TypeError:
-        raise ModelError(f"n: expected sample sizes, got {n!r}") from None
-    if not values:
-        raise ModelError("n: expected at least one sample size, got none")
-    needed = q + (k if k > 1 else 1)
+    layout = pilot_layout(G, result.group_columns)
     per = " per group" if layout.kind == "groups" else ""
-    least = max(1, math.ceil(needed / len(layout.members))) if layout.kind == "groups" else needed
-    if method != "glm":
-        least = max(least, 2 if layout.kind == "groups" else 3)
-    ns = []
-    for v in values:
-        v = _whole(v, "n", least=1)
-        if v < least:
-            raise ModelError(f"n: expected at least {least}{per} so that the {result.kind} test has a "
-                             f"residual df ({q} group column(s){f', {k} joint contrasts' if k > 1 else ''}), "
-                             f"got {v}")
-        if v in ns:
-            raise ModelError(f"n: {v} is listed twice")
-        ns.append(v)
-    simulations = _whole(simulations, "simulations", least=1)
+    ns = sample_sizes(n, result=result, layout=layout, k=k, q=q)
+    simulations = whole_number(simulations, "simulations", least=1)
     if simulations > 1_000_000:
         raise ModelError(f"simulations: expected at most 1000000, got {simulations}")
-    seed = _whole(seed, "seed", least=0)
-    try:
-        effect_scale = float(effect_scale)
-    except (TypeError, ValueError):
-        raise ModelError(f"effect_scale: expected a number > 0, got {effect_scale!r}") from None
-    if not (math.isfinite(effect_scale) and effect_scale > 0):
-        raise ModelError(f"effect_scale: expected a finite number > 0, got {effect_scale:g}")
+    seed = whole_number(seed, "seed", least=0)
+    effect_scale = positive_number(effect_scale, "effect_scale")
     alpha = result.alpha if alpha is None else alpha
     if not (isinstance(alpha, (int, float)) and 0 < alpha < 1):
         raise ModelError(f"alpha: expected a number strictly between 0 and 1, got {alpha!r}")
     if not (isinstance(confidence_level, (int, float)) and 0 < confidence_level < 1):
         raise ModelError(f"confidence_level: expected a number strictly between 0 and 1, got {confidence_level!r}")
-    correction = result.correction if correction is None else correction
-    if not isinstance(correction, _SETTINGS):
-        raise ModelError("correction: expected a settings object of glmeeg.inference.corrections (e.g. "
-                         f"ClusterMass()), got {correction!r}")
-    resampled = correction.method in PERMUTATION_METHODS
-    if resampled:
-        permutations = _whole(permutations, "permutations", least=1)
-        if 1.0 / (permutations + 1) > alpha:
-            raise ModelError(f"permutations: {permutations} resamplings cannot give p <= alpha {alpha:g}; "
-                             f"use at least {math.ceil(1 / alpha)}")
-        correction = type(correction)(**{**correction.model_dump(), "permutations": permutations})
-    else:
-        permutations = None
+    correction, permutations = _correction(result.correction if correction is None else correction,
+                                           permutations, alpha)
     graph_arrays, neighbours = None, None
     if correction.method in ("cluster", "tfce"):
-        graph_arrays, neighbours = _points_graph(graph, result)
-    if target is None:
-        target_mask = np.asarray(result.significant, dtype=bool)
-        count = int(target_mask.sum())
-        target_text = (f"the {count} points of the pilot's significant clusters"
-                       if result.correction.method == "cluster" else f"the pilot's {count} significant points")
-    else:
-        target_mask = np.asarray(target)
-        if target_mask.shape != (P,) or target_mask.dtype != bool:
-            raise ModelError(f"target: expected a boolean array of the result's {P} points, got "
-                             f"{target_mask.dtype} of shape {target_mask.shape}")
-        target_text = f"the {int(target_mask.sum())} points given"
-    if result.kind == "t":
-        target_text += " (detected by a significant point there with the pilot's sign)"
-    target_sign = np.sign(np.nan_to_num(np.asarray(result.statistic, dtype=np.float64)))
+        graph_arrays, neighbours = points_graph_of(graph, result)
+    target_mask, target_text = target_region(result, target)
 
     # ---- the pilot's effect and noise
     from ..inference.permutation import choose_resampling
@@ -494,56 +354,23 @@ def simulate_power(result: TestResult, *, n: int | Sequence[int], simulations: i
 
     fit = fit_ols(G, Y.reshape(n0, k * P))
     fitted = (G @ fit.betas).reshape(n0, k, P)
-    residuals = Y - fitted
-    effect = effect_scale * fitted
-    noise = math.sqrt(n0 / (n0 - q)) * residuals
     scheme = choose_resampling(G, L)
-    flips = scheme == "sign-flip"
-
-    def one_study(n_value: int, j: int) -> tuple[bool, bool]:
-        rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(n_value, j)))
-        total = layout.total(n_value)
-        for _ in range(_MAX_REDRAWS):
-            idx = layout.draw(n_value, rng)
-            Gs = G[idx]
-            if layout.kind == "one-sample" or np.linalg.matrix_rank(Gs) == q:
-                break
-        else:
-            raise ModelError(f"n: {n_value}{per} gives group designs without full rank in "
-                             f"{_MAX_REDRAWS} draws; use a larger n")
-        signs = (1.0 - 2.0 * rng.integers(0, 2, size=total)) if flips else np.ones(total)
-        study_seed = int(rng.integers(0, 2**63 - 1))
-        Ys = effect[idx] + signs[:, None, None] * noise[idx]
-        try:
-            stat, p_corrected = _analyse(Ys, Gs, L, method=method, trim=trim,
-                                         alternative=result.alternative, correction=correction,
-                                         seed=study_seed, graph=graph_arrays, memory_limit=memory_limit)
-        except ModelError as e:
-            raise ModelError(f"n: {n_value}{per}: {e}") from None
-        significant = np.nan_to_num(p_corrected, nan=1.0) <= alpha
-        hit = significant & target_mask
-        if result.kind == "t":
-            hit &= np.sign(stat) == target_sign
-        return bool(significant.any()), bool(hit.any())
-
+    study = _Study(effect=effect_scale * fitted, noise=math.sqrt(n0 / (n0 - q)) * (Y - fitted), G=G, L=L,
+                   layout=layout, flips=scheme == "sign-flip", seed=seed, per=per,
+                   analyse=dict(method=method, trim=trim, alternative=result.alternative,
+                                correction=correction, graph=graph_arrays, memory_limit=memory_limit),
+                   alpha=alpha, target_mask=target_mask,
+                   target_sign=(np.sign(np.nan_to_num(np.asarray(result.statistic, dtype=np.float64)))
+                                if result.kind == "t" else None))
     rates = []
     for n_value in ns:
         found = np.zeros(2, dtype=np.int64)
         for j in range(simulations):
-            found += one_study(n_value, j)
+            found += study.detections(n_value, j)
             if progress is not None:
                 progress(n_value, j + 1, simulations)
-        for criterion, count in zip(CRITERIA, found):
-            if criterion == "target" and not target_mask.any():
-                continue
-            p_hat = count / simulations
-            low, high = _wilson(int(count), simulations, confidence_level)
-            rates.append(DetectionRate(n=n_value, total_n=layout.total(n_value), criterion=criterion,
-                                       detections=int(count), simulations=simulations,
-                                       probability=float(p_hat),
-                                       standard_error=math.sqrt(p_hat * (1 - p_hat) / simulations),
-                                       low=low, high=high))
-
+        rates += _rates(n_value, found, layout=layout, simulations=simulations,
+                        confidence_level=confidence_level, with_target=bool(target_mask.any()))
     notes = _notes(ns, layout=layout, per=per, effect_scale=effect_scale, correction=correction,
                    target_mask=target_mask, scheme=scheme, alpha=alpha, n0=n0)
     return SimulatedPower(test=result.name, kind=result.kind, alternative=result.alternative, alpha=alpha,
@@ -553,6 +380,80 @@ def simulate_power(result: TestResult, *, n: int | Sequence[int], simulations: i
                           seed=seed, confidence_level=confidence_level, target=target_text,
                           target_points=int(target_mask.sum()), neighbours=neighbours,
                           rates=tuple(rates), notes=tuple(notes))
+
+
+def _correction(correction, permutations, alpha: float):
+    """The correction of the simulated studies, with its number of resamplings (None for the
+    corrections that do not resample)."""
+    if not isinstance(correction, _SETTINGS):
+        raise ModelError("correction: expected a settings object of glmeeg.inference.corrections (e.g. "
+                         f"ClusterMass()), got {correction!r}")
+    if correction.method not in PERMUTATION_METHODS:
+        return correction, None
+    permutations = whole_number(permutations, "permutations", least=1)
+    if 1.0 / (permutations + 1) > alpha:
+        raise ModelError(f"permutations: {permutations} resamplings cannot give p <= alpha {alpha:g}; "
+                         f"use at least {math.ceil(1 / alpha)}")
+    return type(correction)(**{**correction.model_dump(), "permutations": permutations}), permutations
+
+
+@dataclass(frozen=True)
+class _Study:
+    """How one simulated study is drawn from the pilot and analysed."""
+
+    effect: np.ndarray          # (n0, k, P) the fitted group effect, scaled
+    noise: np.ndarray           # (n0, k, P) the residual maps, rescaled to unbiased variance
+    G: np.ndarray
+    L: np.ndarray
+    layout: PilotLayout
+    flips: bool
+    seed: int
+    per: str
+    analyse: dict
+    alpha: float
+    target_mask: np.ndarray
+    target_sign: np.ndarray | None   # for t tests: a detection in the target needs the pilot's sign
+
+    def detections(self, n_value: int, j: int) -> tuple[bool, bool]:
+        """Study ``j`` of size ``n_value``: (any significant point, a significant point in the target)."""
+        rng = np.random.default_rng(np.random.SeedSequence(self.seed, spawn_key=(n_value, j)))
+        total = self.layout.total(n_value)
+        q = self.G.shape[1]
+        for _ in range(_MAX_REDRAWS):
+            idx = self.layout.draw(n_value, rng)
+            Gs = self.G[idx]
+            if self.layout.kind == "one-sample" or np.linalg.matrix_rank(Gs) == q:
+                break
+        else:
+            raise ModelError(f"n: {n_value}{self.per} gives group designs without full rank in "
+                             f"{_MAX_REDRAWS} draws; use a larger n")
+        signs = (1.0 - 2.0 * rng.integers(0, 2, size=total)) if self.flips else np.ones(total)
+        study_seed = int(rng.integers(0, 2**63 - 1))
+        Ys = self.effect[idx] + signs[:, None, None] * self.noise[idx]
+        try:
+            stat, p_corrected = _analyse(Ys, Gs, self.L, seed=study_seed, **self.analyse)
+        except ModelError as e:
+            raise ModelError(f"n: {n_value}{self.per}: {e}") from None
+        significant = np.nan_to_num(p_corrected, nan=1.0) <= self.alpha
+        hit = significant & self.target_mask
+        if self.target_sign is not None:
+            hit &= np.sign(stat) == self.target_sign
+        return bool(significant.any()), bool(hit.any())
+
+
+def _rates(n_value: int, found: np.ndarray, *, layout: PilotLayout, simulations: int,
+           confidence_level: float, with_target: bool) -> list[DetectionRate]:
+    out = []
+    for criterion, count in zip(CRITERIA, found):
+        if criterion == "target" and not with_target:
+            continue
+        p_hat = count / simulations
+        low, high = _wilson(int(count), simulations, confidence_level)
+        out.append(DetectionRate(n=n_value, total_n=layout.total(n_value), criterion=criterion,
+                                 detections=int(count), simulations=simulations, probability=float(p_hat),
+                                 standard_error=math.sqrt(p_hat * (1 - p_hat) / simulations),
+                                 low=low, high=high))
+    return out
 
 
 def _statistic(Y: np.ndarray, G: np.ndarray, L: np.ndarray) -> np.ndarray:
@@ -612,7 +513,7 @@ def _analyse(Y, G, L, *, method, trim, alternative, correction, seed, graph,
     return stat, perm.p_corrected
 
 
-def _notes(ns, *, layout: _Layout, per: str, effect_scale: float, correction, target_mask, scheme,
+def _notes(ns, *, layout: PilotLayout, per: str, effect_scale: float, correction, target_mask, scheme,
            alpha: float, n0: int) -> list[str]:
     notes = []
     low = [v for v in ns if v < EEG_TYPICAL_N[0]]

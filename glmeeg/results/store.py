@@ -16,17 +16,8 @@ from pydantic import ValidationError
 
 from ..errors import GlmeegError
 from .files import csv_safe, write_text
-from .models import (
-    _ARRAYS,
-    _MAPS,
-    _OPTIONAL_ARRAYS,
-    SCHEMA_VERSION,
-    Provenance,
-    RunResult,
-    SubjectSummary,
-    TestResult,
-    _plain,
-)
+from .models import (_ARRAYS, _MAPS, _OPTIONAL_ARRAYS, SCHEMA_VERSION, Provenance, RunResult,
+                     SubjectSummary, TestResult, _plain)
 
 # Zip entries carry a time stamp; a fixed one keeps result.npz byte-identical across runs.
 _ZIP_TIME = (1980, 1, 1, 0, 0, 0)
