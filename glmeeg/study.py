@@ -298,8 +298,26 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
                         text_columns=("subject",))
     trials["subject"] = _subject_column(trials, spec.trials)
     files["trials"] = trials_path
+    subjects = _subjects_table(spec, root, list(dict.fromkeys(trials["subject"])), files, warnings)
+    order = list(subjects["subject"])
+    sensors = _sensors_table(spec, root, files)
+    epochs = _epoch_headers(spec, root, order, n_channels=len(sensors))
+    files.update({f"epochs:{s}": path for s, path in epochs.files.items()})
+    trials["epoch"] = _epoch_column(trials, spec, epochs, root)
+    n_times = epochs.shape[-1]
+    times = tuple(float(t) for t in np.round(spec.time_start + np.arange(n_times) / spec.sampling_rate, 12))
+    axes = Axes(channels=tuple(sensors["name"]), times=times,
+                frequencies=tuple(spec.frequencies) if spec.frequencies is not None else None)
+    return Study(root=root, trials=trials, subjects=subjects, sensors=sensors, axes=axes,
+                 subject_ids=tuple(order), epoch_files=epochs.files, epoch_counts=epochs.counts,
+                 input_files=files, warnings=tuple(warnings), epoch_itemsizes=epochs.itemsizes)
 
-    order = list(dict.fromkeys(trials["subject"]))
+
+
+
+def _subjects_table(spec: DataSpec, root: Path, order: list[str], files: dict, warnings: list) -> pd.DataFrame:
+    """The subjects table (or one made of the trials' subjects), rows in the study's order:
+    subjects without trials are left out with a warning."""
     if spec.subjects is not None:
         subj_path = _resolve(root, spec.subjects)
         subjects = read_table(subj_path, sep=",", label=spec.subjects, required=("subject",),
@@ -324,6 +342,11 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
         subjects = pd.DataFrame({"subject": order}, index=pd.Index(order, name=None))
     subjects.index.name = None
 
+    return subjects
+
+
+def _sensors_table(spec: DataSpec, root: Path, files: dict) -> pd.DataFrame:
+    """The sensors table: names non-empty and unique, positions numeric."""
     chan_path = _resolve(root, spec.channels)
     sensors = read_table(chan_path, sep="\t", label=spec.channels, required=("name",),
                          text_columns=("name",))
@@ -339,6 +362,23 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
             raise StudyError(f"{spec.channels}: column {c!r} must hold numbers (sensor positions)")
     files["channels"] = chan_path
 
+    return sensors
+
+
+@dataclass(frozen=True)
+class _EpochHeaders:
+    """What the epoch files' headers say: path, epoch count and item size per subject, and the
+    shape of one epoch (the same for every subject)."""
+
+    files: dict[str, Path]
+    counts: dict[str, int]
+    itemsizes: dict[str, int]
+    shape: tuple[int, ...]
+
+
+def _epoch_headers(spec: DataSpec, root: Path, order: list[str], *, n_channels: int) -> _EpochHeaders:
+    """Every subject's epoch array header, checked against the sensors, the frequencies and the
+    first subject's shape (nothing but the headers is read)."""
     epoch_files: dict[str, Path] = {}
     counts: dict[str, int] = {}
     itemsizes: dict[str, int] = {}
@@ -357,9 +397,9 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
                              "first (epochs) must be at least 1")
         if shape0 is None:
             shape0, first = arr.shape[1:], s
-            if arr.shape[1] != len(sensors):
+            if arr.shape[1] != n_channels:
                 raise StudyError(f"subject {s}: {label} has {arr.shape[1]} channels; {spec.channels} "
-                                 f"lists {len(sensors)}")
+                                 f"lists {n_channels}")
             if arr.ndim == 4 and spec.frequencies is None:
                 raise StudyError(f"subject {s}: {label} is 4-D (epochs, channels, frequencies, times); "
                                  "give data.frequencies in the design file")
@@ -374,9 +414,13 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
                              f"{first} has {shape0}")
         epoch_files[s] = path
         counts[s] = int(arr.shape[0])
-        files[f"epochs:{s}"] = path
 
-    # Which epoch each trials row refers to.
+    return _EpochHeaders(files=epoch_files, counts=counts, itemsizes=itemsizes, shape=shape0)
+
+
+def _epoch_column(trials: pd.DataFrame, spec: DataSpec, epochs: _EpochHeaders, root: Path) -> pd.Series:
+    """Which epoch each trials row refers to: the ``epoch`` column checked, or the rows' order."""
+    counts, epoch_files = epochs.counts, epochs.files
     if "epoch" in trials.columns:
         ep = pd.to_numeric(trials["epoch"], errors="coerce")
         bad = ep.isna() | (ep != np.floor(ep)) | (ep < 0)
@@ -384,9 +428,9 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
             row = int(np.flatnonzero(bad.to_numpy())[0])
             raise StudyError(f"{spec.trials} row {row + 2}: epoch {str(trials['epoch'].iloc[row])!r} is "
                              "not a non-negative whole number")
-        trials["epoch"] = ep.astype(np.int64)
-        for s, rows in trials.groupby("subject", sort=False):
-            e = rows["epoch"].to_numpy()
+        ep = ep.astype(np.int64)
+        for s, e in ep.groupby(trials["subject"], sort=False):
+            e = e.to_numpy()
             if e.max() >= counts[s]:
                 raise StudyError(f"subject {s}: {spec.trials} refers to epoch {int(e.max())} but "
                                  f"{_relative(epoch_files[s], root)} has {counts[s]} epochs (0-based indices)")
@@ -399,15 +443,8 @@ def read_study(spec: DataSpec, *, root: str | Path) -> Study:
                 raise StudyError(f"subject {s}: {_relative(epoch_files[s], root)} has {counts[s]} epochs, "
                                  f"{spec.trials} lists {len(rows)} rows for {s} (add an 'epoch' column "
                                  "to map rows to epochs when some were rejected)")
-        trials["epoch"] = trials.groupby("subject", sort=False).cumcount().astype(np.int64)
-
-    n_times = shape0[-1]
-    times = tuple(float(t) for t in np.round(spec.time_start + np.arange(n_times) / spec.sampling_rate, 12))
-    axes = Axes(channels=tuple(sensors["name"]), times=times,
-                frequencies=tuple(spec.frequencies) if spec.frequencies is not None else None)
-    return Study(root=root, trials=trials, subjects=subjects, sensors=sensors, axes=axes,
-                 subject_ids=tuple(order), epoch_files=epoch_files, epoch_counts=counts,
-                 input_files=files, warnings=tuple(warnings), epoch_itemsizes=itemsizes)
+        ep = trials.groupby("subject", sort=False).cumcount().astype(np.int64)
+    return ep
 
 
 def read_neighbour_table(path: str | Path, *, label: str) -> pd.DataFrame:
