@@ -21,6 +21,7 @@ from typing import Literal, Union
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from . import defaults
 from .errors import DesignFileError
 
 __all__ = ["DataSpec", "SubjectModelSpec", "GroupModelSpec", "TestSpec", "DesignSpec",
@@ -202,7 +203,8 @@ class TestSpec(_Strict):
     confidence_level: float = Field(0.95, gt=0, lt=1, description="level of the effect-size intervals")
     group_method: Literal["glm", "trimmed", "welch"] = Field(
         "glm", description="group GLM; trimmed means (one sample / Yuen); Welch's unequal variances")
-    trim: float | None = Field(None, ge=0, lt=0.5, description="share trimmed per tail (default 0.2)")
+    trim: float | None = Field(None, ge=0, lt=0.5,
+                               description=f"share trimmed per tail (default {defaults.TRIM:g})")
     bootstrap: int = Field(0, ge=0, le=1_000_000, description="bootstrap resamples for intervals of the "
                            "group estimate (0: none; 100 at least)")
     bootstrap_method: Literal["bca", "percentile"] = "bca"
@@ -233,6 +235,12 @@ class TestSpec(_Strict):
                     raise ValueError(f"{key} applies to correction = {' | '.join(allowed)}, not "
                                      f"{self.correction!r}")
         return self
+
+    @property
+    def trim_used(self) -> float:
+        """The share trimmed per tail by ``group_method = "trimmed"``: ``trim``, or the default
+        (:data:`glmeeg.defaults.TRIM`, read now)."""
+        return defaults.TRIM if self.trim is None else self.trim
 
     @field_validator("name")
     @classmethod

@@ -16,7 +16,7 @@ PACKAGE = Path(__file__).resolve().parent.parent / "glmeeg"
 
 # Upstream first. Modules of one line may import each other.
 STAGES = [
-    ("_version", "errors"),
+    ("_version", "errors", "defaults"),
     ("axes",),
     ("spec", "formula"),
     ("study",),

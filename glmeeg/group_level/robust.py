@@ -25,6 +25,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.stats
 
+from .. import defaults
 from ..errors import ModelError
 from .glm import GroupStatistics, p_values, unusable_variance
 
@@ -129,7 +130,7 @@ def _finish(estimate, se, df, d, d_name, *, alternative, data) -> GroupStatistic
                            effect_size_high=nan.copy(), confidence_level=0.95)
 
 
-def trimmed_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, *, trim: float = 0.2,
+def trimmed_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, *, trim: float | None = None,
                  alternative: str = "two-sided") -> GroupStatistics:
     """Trimmed-mean t test at every point: one-sample (Tukey-McLaughlin) or two groups (Yuen).
 
@@ -139,8 +140,8 @@ def trimmed_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray
         ``(n_subjects, n_points)`` subject contrast estimates.
     design, contrast : numpy.ndarray
         Group design and contrast; see :func:`group_layout`.
-    trim : float, default 0.2
-        Share trimmed from each tail, in [0, 0.5).
+    trim : float, optional
+        Share trimmed from each tail, in [0, 0.5); default :data:`glmeeg.defaults.TRIM` (0.2).
     alternative : {"two-sided", "greater", "less"}
 
     Returns
@@ -159,6 +160,7 @@ def trimmed_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray
     ``t = (m_t1 - m_t2) / √(d_1 + d_2)`` on ``(d_1 + d_2)² / (d_1²/(h_1 - 1) + d_2²/(h_2 - 1))``
     df [2]_.
     """
+    trim = defaults.TRIM if trim is None else trim
     if not 0 <= trim < 0.5:
         raise ModelError(f"trim must be in [0, 0.5); got {trim!r}")
     Y = np.asarray(estimates, dtype=np.float64)

@@ -46,12 +46,11 @@ def subject_jobs(plan: AnalysisPlan, *, hashes: dict[str, str] | None = None) ->
     sm = plan.spec.subject_model
     robust = None
     if sm.robust is not None:
-        robust = {"norm": sm.robust, **{k: v for k, v in (("tuning", sm.robust_tuning),
-                                                           ("max_iterations", sm.robust_max_iterations),
-                                                           ("tolerance", sm.robust_tolerance),
-                                                           ("convergence", sm.robust_convergence),
-                                                           ("scale_constant", sm.robust_scale_constant))
-                                        if v is not None}}
+        from ..subject_level.robust import robust_options
+
+        robust = robust_options(sm.robust, tuning=sm.robust_tuning, max_iterations=sm.robust_max_iterations,
+                                tolerance=sm.robust_tolerance, convergence=sm.robust_convergence,
+                                scale_constant=sm.robust_scale_constant)
     jobs = []
     for s in st.subject_ids:
         X = plan.subject_matrices[s]

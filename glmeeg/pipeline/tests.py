@@ -40,7 +40,7 @@ def _bootstrap_settings(test: TestPlan) -> dict:
     from ..group_level.robust import group_layout
 
     groups, sign = group_layout(test.group_matrix.matrix, test.group_contrast.matrix, method="bootstrap")
-    trim = (0.2 if test.spec.trim is None else test.spec.trim) if test.spec.group_method == "trimmed" else 0.0
+    trim = test.spec.trim_used if test.spec.group_method == "trimmed" else 0.0
     return dict(groups=groups, sign=sign, trim=trim, confidence_level=test.spec.confidence_level,
                 n_resamples=test.spec.bootstrap, method=test.spec.bootstrap_method,
                 seed=test.spec.seed if test.spec.seed is not None else 0)
@@ -127,7 +127,7 @@ def _statistics(Y: np.ndarray, test: TestPlan, memory_limit: int):
     if test.spec.group_method == "trimmed":
         from ..group_level.robust import trimmed_test
         return trimmed_test(Y[:, 0], test.group_matrix.matrix, test.group_contrast.matrix,
-                            trim=0.2 if test.spec.trim is None else test.spec.trim,
+                            trim=test.spec.trim_used,
                             alternative=test.spec.alternative)
     if test.spec.group_method == "welch":
         from ..group_level.robust import welch_test
@@ -148,7 +148,7 @@ def _resampled(plan: AnalysisPlan, test: TestPlan, Y: np.ndarray, stats, extra: 
     perm = permutation_test(Y, test.group_matrix.matrix, test.group_contrast.matrix,
                             kind=stats.kind, df=stats.df, alternative=test.spec.alternative,
                             correction=test.correction, graph=plan.graph, method=test.spec.group_method,
-                            trim=0.2 if test.spec.trim is None else test.spec.trim,
+                            trim=test.spec.trim_used,
                             memory_limit=memory_limit, backend=backend, progress=progress,
                             task=f"test {test.spec.name}: resamplings")
     extra.update(p_permutation=perm.p_uncorrected, null_distribution=perm.null_distribution,

@@ -20,6 +20,7 @@ import pandas as pd
 import scipy.stats
 from pydantic import BaseModel, ConfigDict
 
+from .. import defaults
 from ..errors import ModelError
 from ..inference.corrections import (PERMUTATION_METHODS, TFCE, Bonferroni, ClusterMass, Correction,
                                      FalseDiscoveryRate, Holm, MaxStatistic, NoCorrection, adjust_p)
@@ -204,8 +205,8 @@ def _wilson(k: int, n: int, level: float) -> tuple[float, float]:
     return float(ci.low), float(ci.high)
 
 
-def simulate_power(result: TestResult, *, n: int | Sequence[int], simulations: int = 200,
-                   correction: Correction | None = None, permutations: int = 500,
+def simulate_power(result: TestResult, *, n: int | Sequence[int], simulations: int | None = None,
+                   correction: Correction | None = None, permutations: int | None = None,
                    effect_scale: float = 1.0, alpha: float | None = None, seed: int = 0,
                    graph=None, target: np.ndarray | None = None, confidence_level: float = 0.95,
                    progress: Callable[[int, int, int], None] | None = None,
@@ -220,16 +221,18 @@ def simulate_power(result: TestResult, *, n: int | Sequence[int], simulations: i
     n : int or sequence of int
         Sample sizes to simulate: participants per group for designs with groups, in total
         otherwise (see Notes). Each must leave the group test at least one residual df.
-    simulations : int, default 200
+    simulations : int, optional
         Simulated studies per sample size (>= 1). The Monte-Carlo standard error of a power
-        near 0.8 is about ``0.4 / sqrt(simulations)``: 0.028 at 200.
+        near 0.8 is about ``0.4 / sqrt(simulations)``: 0.028 at 200. Default
+        :data:`glmeeg.defaults.SIMULATIONS` (200).
     correction : Correction, optional
         Settings object of :mod:`glmeeg.inference.corrections` run on every simulated study;
         default: the result's own correction.
-    permutations : int, default 500
+    permutations : int, optional
         Resamplings of each simulated study's max / cluster / TFCE test (ignored by parametric
         corrections). Fewer than the single analysis would use are enough for a power estimate
-        [4]_; ``1 / (permutations + 1)`` must not exceed ``alpha``.
+        [4]_; ``1 / (permutations + 1)`` must not exceed ``alpha``. Default
+        :data:`glmeeg.defaults.SIMULATED_PERMUTATIONS` (500).
     effect_scale : float, default 1.0
         Factor (> 0) on the pilot's effect: below 1 to plan for a smaller effect than the pilot
         showed, which is usually wise (see Notes).
@@ -327,11 +330,12 @@ def simulate_power(result: TestResult, *, n: int | Sequence[int], simulations: i
     n0, k, P = Y.shape
     q = G.shape[1]
     method = result.spec.group_method
-    trim = 0.2 if result.spec.trim is None else result.spec.trim
+    trim = result.spec.trim_used
     layout = pilot_layout(G, result.group_columns)
     per = " per group" if layout.kind == "groups" else ""
     ns = sample_sizes(n, result=result, layout=layout, k=k, q=q)
-    simulations = whole_number(simulations, "simulations", least=1)
+    simulations = whole_number(defaults.SIMULATIONS if simulations is None else simulations,
+                               "simulations", least=1)
     if simulations > 1_000_000:
         raise ModelError(f"simulations: expected at most 1000000, got {simulations}")
     seed = whole_number(seed, "seed", least=0)
@@ -342,7 +346,8 @@ def simulate_power(result: TestResult, *, n: int | Sequence[int], simulations: i
     if not (isinstance(confidence_level, (int, float)) and 0 < confidence_level < 1):
         raise ModelError(f"confidence_level: expected a number strictly between 0 and 1, got {confidence_level!r}")
     correction, permutations = _correction(result.correction if correction is None else correction,
-                                           permutations, alpha)
+                                           defaults.SIMULATED_PERMUTATIONS if permutations is None
+                                           else permutations, alpha)
     graph_arrays, neighbours = None, None
     if correction.method in ("cluster", "tfce"):
         graph_arrays, neighbours = points_graph_of(graph, result)

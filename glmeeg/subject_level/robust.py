@@ -25,12 +25,13 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.linalg
 
+from .. import defaults
 from ..errors import ModelError
 from .irls import compiled_irls
 
-# Default tuning constants: 95 % asymptotic efficiency at the normal distribution for a
-# location/regression M-estimator (Huber 1.345; bisquare 4.685) - Holland & Welsch (1977).
-NORMS = {"huber": 1.345, "bisquare": 4.685}
+# The norms and their default tuning constants (glmeeg.defaults.ROBUST_TUNING: 95 % asymptotic
+# efficiency at the normal distribution, Holland & Welsch, 1977).
+NORMS = defaults.ROBUST_TUNING
 
 
 _NORM_CODES = {"huber": 0, "bisquare": 1}
@@ -41,8 +42,6 @@ _NORM_CODES = {"huber": 0, "bisquare": 1}
 CONVERGENCE_RULES = {"standardized-residuals": 0, "relative-residuals": 1}
 
 
-# Normal quantile at 3/4: MAD / this is a consistent estimate of sigma at the normal.
-_MAD_CONSTANT = 0.6744897501960817
 
 
 # Points per block: the block's trials are copied once, as float64, into a (block x trials)
@@ -132,8 +131,8 @@ class RobustFit:
     tuning: float
     tolerance: float
     max_iterations: int
-    convergence: str = "standardized-residuals"
-    scale_constant: float = _MAD_CONSTANT
+    convergence: str
+    scale_constant: float
 
     def contrast(self, c: np.ndarray) -> np.ndarray:
         """Contrast estimates ``c @ betas``: ``(rows, n_points)`` for a ``(rows, n_columns)`` c."""
@@ -177,8 +176,6 @@ def _validate(X, Y, norm, tuning, max_iterations, tolerance, weights, scale, con
             or not math.isfinite(scale_constant) or not 0.5 <= scale_constant <= 1.0:
         raise ModelError(f"scale_constant={scale_constant!r}: must be a number in [0.5, 1] "
                          "(0.6745 for a consistent scale at the normal)")
-    if tuning is None:
-        tuning = NORMS[norm]
     if isinstance(tuning, bool) or not isinstance(tuning, numbers.Real) \
             or not math.isfinite(tuning) or tuning <= 0:
         raise ModelError(f"tuning={tuning!r}: must be a finite number > 0")
@@ -226,11 +223,24 @@ def _validate(X, Y, norm, tuning, max_iterations, tolerance, weights, scale, con
     return X, Y, float(tuning), int(max_iterations), float(tolerance), a, rows, float(scale_constant)
 
 
+def robust_options(norm: str, *, tuning: float | None = None, max_iterations: int | None = None,
+                   tolerance: float | None = None, convergence: str | None = None,
+                   scale_constant: float | None = None) -> dict:
+    """The options of :func:`fit_robust` with every one not given taken from :mod:`glmeeg.defaults`
+    (read now), so that a job's options, and the cache key made of them, say what is done."""
+    if norm not in defaults.ROBUST_TUNING:
+        raise ModelError(f"norm={norm!r} is not known; expected one of {sorted(defaults.ROBUST_TUNING)}")
+    return {"norm": norm, "tuning": defaults.ROBUST_TUNING[norm] if tuning is None else tuning,
+            "max_iterations": defaults.ROBUST_MAX_ITERATIONS if max_iterations is None else max_iterations,
+            "tolerance": defaults.ROBUST_TOLERANCE if tolerance is None else tolerance,
+            "convergence": defaults.ROBUST_CONVERGENCE if convergence is None else convergence,
+            "scale_constant": defaults.ROBUST_SCALE_CONSTANT if scale_constant is None else scale_constant}
+
+
 def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: float | None = None,
-               max_iterations: int = 50, tolerance: float = 1e-8,
-               convergence: str = "standardized-residuals",
-               weights: np.ndarray | None = None, scale: str = "mad",
-               scale_constant: float = _MAD_CONSTANT) -> RobustFit:
+               max_iterations: int | None = None, tolerance: float | None = None,
+               convergence: str | None = None, weights: np.ndarray | None = None, scale: str = "mad",
+               scale_constant: float | None = None) -> RobustFit:
     """Fit ``Y = X @ B + E`` by M-estimation (Huber or bisquare) at every column of ``Y``.
 
     Parameters
@@ -246,9 +256,9 @@ def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: flo
     tuning : float, optional
         Tuning constant in units of the robust scale. Default 1.345 for Huber and 4.685 for the
         bisquare: 95 % efficiency relative to least squares when the errors are normal [2]_.
-    max_iterations : int, default 50
+    max_iterations : int, optional
         Most weighted least-squares steps at a point after the least-squares start.
-    tolerance : float, default 1e-8
+    tolerance : float, optional
         Tolerance of the stopping rule ``convergence``.
     convergence : {"standardized-residuals", "relative-residuals"}
         When a point has converged. ``"standardized-residuals"`` (default): no standardized
@@ -265,10 +275,14 @@ def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: flo
     scale : {"mad"}, default "mad"
         Robust scale re-estimated at every iteration: the median absolute residual divided by
         ``scale_constant``.
-    scale_constant : float, default 0.6744897501960817
+    scale_constant : float, optional
         The normal quantile at 3/4, which makes the scale consistent for the error SD at the
         normal. Software that rounds it to 0.6745 gives betas that differ in the fifth digit;
         pass 0.6745 to reproduce such results.
+
+    Options not given take their values from :mod:`glmeeg.defaults` (``ROBUST_TUNING``,
+    ``ROBUST_MAX_ITERATIONS`` = 50, ``ROBUST_TOLERANCE`` = 1e-8, ``ROBUST_CONVERGENCE``,
+    ``ROBUST_SCALE_CONSTANT``).
 
     Returns
     -------
@@ -344,8 +358,12 @@ def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: flo
     >>> bool(np.all(np.abs(fit.betas - [[2.0], [3.0]]) < 0.6)), bool(fit.converged.all())
     (True, True)
     """
+    o = robust_options(norm, tuning=tuning, max_iterations=max_iterations, tolerance=tolerance,
+                       convergence=convergence, scale_constant=scale_constant)
+    convergence = o["convergence"]
     X, Y, tuning, max_iterations, tolerance, a, rows, scale_constant = _validate(
-        X, Y, norm, tuning, max_iterations, tolerance, weights, scale, convergence, scale_constant)
+        X, Y, norm, o["tuning"], o["max_iterations"], o["tolerance"], weights, scale, convergence,
+        o["scale_constant"])
     p = X.shape[1]
     Xu = X[rows]
     au = a[rows]
