@@ -49,17 +49,20 @@ def _subject_model(run: RunResult) -> str:
     text += ". "
     if sm.get("robust"):
         norm = {"huber": "Huber's", "bisquare": "Tukey's bisquare"}[sm["robust"]]
-        tuning = sm.get("robust_tuning") or {"huber": 1.345, "bisquare": 4.685}[sm["robust"]]
-        constant = sm.get("robust_scale_constant") or 0.6744897501960817
-        rule = sm.get("robust_convergence") or "standardized-residuals"
-        tol = sm.get("robust_tolerance") or 1e-8
+        from ..subject_level.robust import robust_options
+
+        o = robust_options(sm["robust"], tuning=sm.get("robust_tuning"),
+                           max_iterations=sm.get("robust_max_iterations"),
+                           tolerance=sm.get("robust_tolerance"), convergence=sm.get("robust_convergence"),
+                           scale_constant=sm.get("robust_scale_constant"))
+        tuning, constant, rule, tol = o["tuning"], o["scale_constant"], o["convergence"], o["tolerance"]
         stop = ("no standardized residual changed by more than" if rule == "standardized-residuals"
                 else "the residual vector changed by less than a relative")
         text += (f"Betas were estimated by M-estimation with {norm} norm (tuning constant "
                  f"{tuning:g}) by iteratively reweighted least squares from the least-squares "
                  f"start, the scale re-estimated at every step as the median absolute residual "
                  f"divided by {constant:.6g}; iterations stopped when {stop} {tol:g}, after at "
-                 f"most {sm.get('robust_max_iterations') or 50} steps (Huber, 1964; Holland & "
+                 f"most {o['max_iterations']} steps (Huber, 1964; Holland & "
                  "Welsch, 1977). ")
     else:
         text += "Betas were estimated by ordinary least squares (QR factorization). "
@@ -78,7 +81,7 @@ def _test(t: TestResult) -> str:
     model = ("an intercept-only group model (one sample)" if t.group_formula.strip() == "1"
              else f"the group model {t.group_formula}")
     if s.group_method == "trimmed":
-        trim = 0.2 if s.trim is None else s.trim
+        trim = s.trim_used
         how = (f"{100 * trim:g} % trimmed means (one-sample trimmed t, Tukey & McLaughlin, 1963; or "
                "Yuen's two-sample test, Yuen, 1974)")
     elif s.group_method == "welch":
