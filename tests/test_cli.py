@@ -12,7 +12,7 @@ import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
-from conftest import write_study
+from glmeeg.testing import HANG_TIMEOUT, run_glmeeg, write_study
 from glmeeg import __version__
 from glmeeg.cli import app
 from glmeeg.results import CLINICAL_CAUTION
@@ -144,8 +144,7 @@ def test_no_arguments_shows_help():
 
 
 def test_module_help_in_a_real_process():
-    proc = subprocess.run([sys.executable, "-m", "glmeeg", "--help"], capture_output=True, text=True,
-                          timeout=120)
+    proc = run_glmeeg("--help")
     assert proc.returncode == 0, proc.stderr
     for command in ("run", "check", "show", "demo"):
         assert command in proc.stdout
@@ -155,7 +154,8 @@ def test_help_keeps_imports_light():
     code = ("import sys\nfrom typer.testing import CliRunner\nfrom glmeeg.cli import app\n"
             "r = CliRunner().invoke(app, ['run', '--help'])\nassert r.exit_code == 0, r.output\n"
             "print(','.join(m for m in ('numba', 'dask', 'matplotlib') if m in sys.modules))")
-    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                          timeout=HANG_TIMEOUT)
     assert proc.returncode == 0, proc.stderr
     assert proc.stdout.strip() == ""
 
@@ -221,3 +221,43 @@ def test_neighbours_prints_and_exports_a_table_that_reads_back(tmp_path):
     again = invoke("neighbours", design)
     assert again.exit_code == 0, again.output
     assert again.stdout.splitlines()[1:] == result.stdout.splitlines()[1:-1]
+
+
+def test_neighbours_help_names_the_methods():
+    result = CliRunner().invoke(app, ["neighbours", "--help"], env={"COLUMNS": "200"})
+    assert result.exit_code == 0, result.output
+    text = " ".join(result.stdout.replace("\u2502", " ").split())  # the help's box lines out
+    assert "--method" in text and "pruned-triangulation | radius" in text
+    assert "--max-distance" in text and "[data] neighbours" in text
+
+
+def test_neighbours_methods_and_their_glmeeg_0_1_names(tmp_path):
+    design = write_study(tmp_path / "s", n_channels=8)
+    default = invoke("neighbours", design)
+    pruned = invoke("neighbours", design, "--method", "pruned-triangulation")
+    assert default.exit_code == pruned.exit_code == 0, default.output + pruned.output
+    assert pruned.stdout == default.stdout and "(pruned-triangulation of " in default.stdout
+    radius = invoke("neighbours", design, "--method", "radius", "--max-distance", "2")
+    assert radius.exit_code == 0 and radius.stderr == "", radius.output
+    assert "(radius of 2 x the median nearest-neighbour spacing of " in radius.stdout
+    # The old names give the same graph, with one note line on this command's stderr (also after
+    # a command that logged to its own stderr in this process).
+    assert invoke("run", design, "--out", tmp_path / "out", "--no-report").exit_code == 0
+    for old, new, extra in [("triangulation", pruned, []),
+                            ("distance", radius, ["--max-distance", "2"])]:
+        result = invoke("neighbours", design, "--method", old, *extra)
+        assert result.exit_code == 0, result.output
+        assert result.stdout == new.stdout
+        assert result.stderr.startswith(f"note: neighbour method '{old}' is now called ")
+        assert result.stderr.count("\n") == 1
+    bad = invoke("neighbours", design, "--method", "nearest")
+    assert bad.exit_code == 2 and bad.stderr.startswith("error: neighbour method must be one of "
+                                                        "pruned-triangulation, radius")
+    # With a neighbour table in the design file there is nothing to choose.
+    assert invoke("neighbours", design, "--out", tmp_path / "pairs.csv").exit_code == 0
+    text = design.read_text()
+    design.write_text(text.replace('sampling_rate = 100.0',
+                                   'sampling_rate = 100.0\nneighbours = "../pairs.csv"'))
+    refused = invoke("neighbours", design, "--method", "radius")
+    assert refused.exit_code == 2
+    assert "--method: applies to neighbours found from positions" in refused.stderr

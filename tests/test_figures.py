@@ -1,6 +1,6 @@
 """Figures: each is rendered to PNG, read back and checked for size, labels and content.
 
-Results come from small synthetic studies run through the whole pipeline (conftest.write_study),
+Results come from small synthetic studies run through the whole pipeline (glmeeg.testing.write_study),
 with an effect planted at channel Cz (index 1), samples 2-4.
 """
 
@@ -17,10 +17,10 @@ matplotlib = pytest.importorskip("matplotlib")
 from matplotlib.image import imread  # noqa: E402
 
 import glmeeg  # noqa: E402
-from glmeeg.report import figures  # noqa: E402
+from glmeeg.report import figures, plotting  # noqa: E402
 from glmeeg.errors import GlmeegError  # noqa: E402
 
-from conftest import write_study  # noqa: E402
+from glmeeg.testing import HANG_TIMEOUT, write_study  # noqa: E402
 
 DPI = 80
 TESTS = """\
@@ -212,7 +212,8 @@ def test_draws_into_given_axes(run, tmp_path):
 
 def test_command_line_does_not_import_matplotlib():
     code = "import sys, glmeeg, glmeeg.cli; print('matplotlib' in sys.modules)"
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
+                         timeout=HANG_TIMEOUT)
     assert out.stdout.strip() == "False"
 
 
@@ -224,6 +225,8 @@ def scalp_result(tmp_path_factory):
 
 
 def test_scalp_map_peaks_at_the_planted_channel(scalp_result, tmp_path):
+    from matplotlib.markers import MarkerStyle
+
     from glmeeg.sensors import standard_position
 
     t = scalp_result
@@ -242,9 +245,31 @@ def test_scalp_map_peaks_at_the_planted_channel(scalp_result, tmp_path):
     radius = max(abs(ax.get_xlim()[0]) / 1.2, 1.0)
     centre = np.hypot(*(np.array([ix, iy]) / 120 * 2 * radius - radius))
     assert centre < 0.25 * radius
-    # The significant sensor is drawn as a white dot (one sensor: Cz).
-    white = [c for c in ax.collections if c.get_label() == "significant"]
-    assert white and len(white[0].get_offsets()) == 1
+    # The significant sensor (one: Cz) is a black diamond with a white rim, the other seven open
+    # dark-grey rings with a light halo (glmeeg's own look; plotting's module docstring).
+    marks = {c.get_label(): c for c in ax.collections
+             if c.get_label() in ("significant", "not significant")}
+    diamonds, rings = marks["significant"], marks["not significant"]
+    assert diamonds.get_gid() == "significant-sensors" and rings.get_gid() == "other-sensors"
+    assert np.allclose(diamonds.get_offsets(), [[0.0, 0.0]], atol=1e-9)   # Cz, at the centre
+    assert len(rings.get_offsets()) == 7
+    diamond = MarkerStyle("D")
+    ring = MarkerStyle("o")
+    assert np.array_equal(diamonds.get_paths()[0].vertices,
+                          diamond.get_path().transformed(diamond.get_transform()).vertices)
+    assert np.array_equal(rings.get_paths()[0].vertices,
+                          ring.get_path().transformed(ring.get_transform()).vertices)
+    assert np.allclose(diamonds.get_facecolor(), [[0, 0, 0, 1]])          # black
+    assert np.allclose(diamonds.get_edgecolor(), [[1, 1, 1, 1]])          # white rim
+    assert diamonds.get_sizes()[0] > 2 * rings.get_sizes()[0]
+    assert len(rings.get_facecolor()) == 0 or np.allclose(rings.get_facecolor()[:, 3], 0)  # open
+    assert np.allclose(rings.get_edgecolor(), [[0.2, 0.2, 0.2, 1]])       # dark grey
+    assert rings.get_path_effects() and diamonds.get_zorder() > rings.get_zorder()
+    footnote = [t for t in fig.texts if t.get_gid() == "footnote"]
+    assert [t.get_text() for t in footnote] == [plotting.SCALP_FOOTNOTE]
+    assert "Black diamonds: significant sensors; rings: the others" in plotting.SCALP_FOOTNOTE
+    # The footnote fits the figure's width.
+    assert footnote[0].get_window_extent().x1 <= fig.bbox.width
 
 
 def test_scalp_map_window_and_errors(scalp_result, run, tmp_path):

@@ -75,7 +75,7 @@ def test_coronal_electrodes_at_18_degree_steps_of_the_preauricular_arc():
     assert np.array_equal(standard_position("T3"), standard_position("T7"))
 
 
-# --- triangulation of the demo cap ------------------------------------------------------------
+# --- pruned triangulation of the demo cap------------------------------------------------------
 
 def test_demo_triangulation_connected_with_2_to_8_neighbours(demo_graph):
     g = demo_graph
@@ -85,7 +85,7 @@ def test_demo_triangulation_connected_with_2_to_8_neighbours(demo_graph):
     assert list(k.index) == DEMO32
     assert k.between(2, 8).all(), k[~k.between(2, 8)]
     assert g.isolated == ()
-    assert g.method.startswith("triangulation")
+    assert g.method.startswith("pruned-triangulation of ")
 
 
 def test_demo_triangulation_follows_the_layout(demo_graph):
@@ -171,29 +171,29 @@ def test_few_sensors(n):
     assert g.isolated == (("Fz",) if n == 1 else ())
 
 
-# --- distance method ---------------------------------------------------------------------------
+# --- radius method -----------------------------------------------------------------------------
 
-def test_distance_method_is_monotone_in_max_distance():
+def test_radius_method_is_monotone_in_max_distance():
     pos = standard_positions(DEMO32)
     previous: set = set()
     counts = []
     for d in [0.1, 0.8, 1.0, 1.2, 1.5, 2.0, 3.0, 100.0]:
-        g = neighbours_from_positions(DEMO32, pos, method="distance", max_distance=d)
+        g = neighbours_from_positions(DEMO32, pos, method="radius", max_distance=d)
         edges = _edge_names(g)
         assert previous <= edges
         previous = edges
         counts.append(g.n_edges)
-        assert "distance" in g.method
+        assert g.method.startswith(f"radius of {d:g} x the median nearest-neighbour spacing")
     assert counts[0] == 0 and counts[-1] == 32 * 31 // 2
     assert counts == sorted(counts)
-    assert neighbours_from_positions(DEMO32, pos, method="distance", max_distance=0.1).isolated \
+    assert neighbours_from_positions(DEMO32, pos, method="radius", max_distance=0.1).isolated \
         == tuple(DEMO32)
 
 
-def test_distance_method_default_and_units():
+def test_radius_method_default_and_units():
     pos = standard_positions(DEMO32)
-    default = neighbours_from_positions(DEMO32, pos, method="distance")
-    explicit = neighbours_from_positions(DEMO32, pos * 90.0 + 5.0, method="distance",
+    default = neighbours_from_positions(DEMO32, pos, method="radius")
+    explicit = neighbours_from_positions(DEMO32, pos * 90.0 + 5.0, method="radius",
                                          max_distance=1.5)
     # Relative to the median nearest-neighbour distance: units and origin do not matter.
     assert _edge_names(default) == _edge_names(explicit)
@@ -203,11 +203,38 @@ def test_bad_method_and_max_distance():
     pos = standard_positions(DEMO32)
     with pytest.raises(GlmeegError, match="neighbour method must be one of"):
         neighbours_from_positions(DEMO32, pos, method="nearest")
-    with pytest.raises(GlmeegError, match="max_distance applies to method='distance' only"):
+    with pytest.raises(GlmeegError, match="max_distance applies to method='radius' only"):
         neighbours_from_positions(DEMO32, pos, max_distance=2.0)
+    with pytest.raises(GlmeegError, match="max_distance applies to method='radius' only"):
+        neighbours_from_positions(DEMO32, pos, method="pruned-triangulation", max_distance=2.0)
     for bad in (0.0, -1.0, float("nan"), "2"):
         with pytest.raises(GlmeegError, match="max_distance must be a positive number"):
-            neighbours_from_positions(DEMO32, pos, method="distance", max_distance=bad)
+            neighbours_from_positions(DEMO32, pos, method="radius", max_distance=bad)
+    for bad in (None, 1, "Triangulation", "pruned triangulation"):
+        with pytest.raises(GlmeegError, match="one of pruned-triangulation, radius"):
+            neighbours_from_positions(DEMO32, pos, method=bad)
+
+
+@pytest.mark.parametrize("old, new", [("triangulation", "pruned-triangulation"), ("distance", "radius")])
+def test_method_names_of_glmeeg_0_1_still_work_with_a_deprecation_warning(old, new):
+    import warnings
+
+    pos = standard_positions(DEMO32)
+    extra = {"max_distance": 1.2} if new == "radius" else {}
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # the current name warns about nothing
+        current = neighbours_from_positions(DEMO32, pos, method=new, **extra)
+        via_names = sensor_graph(pd.DataFrame({"name": DEMO32}), method=new, **extra)
+    message = f"neighbour method '{old}' is now called '{new}'"
+    with pytest.warns(DeprecationWarning, match=message) as caught:
+        deprecated = neighbours_from_positions(DEMO32, pos, method=old, **extra)
+    # One warning, attributed to the caller (this file), so Python shows it to API users.
+    assert len(caught) == 1 and caught[0].filename == __file__
+    assert deprecated == current                 # the same edges and the same description
+    with pytest.warns(DeprecationWarning, match=message) as caught:
+        deprecated = sensor_graph(pd.DataFrame({"name": DEMO32}), method=old, **extra)
+    assert len(caught) == 1 and caught[0].filename == __file__
+    assert deprecated == via_names and deprecated.method.startswith(f"{new} of ")
 
 
 # --- bad positions -------------------------------------------------------------------------------
@@ -300,10 +327,11 @@ def test_sensor_graph_uses_xyz_when_complete():
     sensors = pd.DataFrame({"name": [f"E{i}" for i in range(32)],
                             "x": pos[:, 0], "y": pos[:, 1], "z": pos[:, 2]})
     g = sensor_graph(sensors, sensors_label="channels.tsv")
-    assert g.method.startswith("triangulation of x, y, z of channels.tsv")
+    assert g.method.startswith("pruned-triangulation of x, y, z of channels.tsv")
     assert connected_components(g.adjacency(), directed=False)[0] == 1
-    g = sensor_graph(sensors, method="distance", max_distance=1.5)
-    assert "distance" in g.method
+    g = sensor_graph(sensors, method="radius", max_distance=1.5)
+    assert g.method == ("radius of 1.5 x the median nearest-neighbour spacing of x, y, z of "
+                        "sensors table")
 
 
 def test_sensor_graph_missing_positions():

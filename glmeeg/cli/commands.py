@@ -43,6 +43,21 @@ def _warning_as_note(message, category, filename, lineno, file=None, line=None) 
         typer.echo(text, err=True)
 
 
+def _end_command_log() -> None:
+    """Remove the glmeeg logger's handler that a command installed (``_progress``): it writes to
+    that command's stderr, where a later command run in the same process (tests, notebooks) must
+    not write its notes."""
+    import logging
+
+    logger = logging.getLogger("glmeeg")
+    if logger.handlers:
+        from ..progress import _HANDLER_MARK
+
+        for h in list(logger.handlers):
+            if getattr(h, _HANDLER_MARK, False):
+                logger.removeHandler(h)
+
+
 def _reports_errors(fn):
     @wraps(fn)
     def wrapper(*args, **kwargs):
@@ -56,9 +71,14 @@ def _reports_errors(fn):
                 with warnings.catch_warnings():
                     # Never a raw warning with its source line on the terminal: one note line.
                     warnings.showwarning = _warning_as_note
+                    # glmeeg's own deprecations (an old option name) are for the user to see;
+                    # Python hides DeprecationWarnings outside __main__ by default.
+                    warnings.filterwarnings("default", category=DeprecationWarning,
+                                            module=r"glmeeg(\.|$)")
                     return fn(*args, **kwargs)
             finally:
                 _close_progress()
+                _end_command_log()
         except GlmeegError as e:
             _close_progress()
             typer.echo(f"error: {e}", err=True)
@@ -180,8 +200,18 @@ def check(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
 @_reports_errors
 def neighbours(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
                out: Annotated[Optional[Path], typer.Option("--out", "-o", help="Write the pairs as a "
-                              "neighbour table (CSV: channel, neighbour) usable as [data] neighbours.")] = None) -> None:
+                              "neighbour table (CSV: channel, neighbour) usable as \\[data] neighbours.")] = None,
+               method: Annotated[Optional[str], typer.Option("--method", help="pruned-triangulation "
+                                 "| radius: neighbours from sensor positions, by the Delaunay "
+                                 "triangulation of the positions projected from the vertex with its "
+                                 "long edges pruned (default), or within a radius (--max-distance). "
+                                 "A run uses the default, or the table written with --out given as "
+                                 "\\[data] neighbours.")] = None,
+               max_distance: Annotated[Optional[float], typer.Option("--max-distance", help="With "
+                                       "--method radius: the radius in median nearest-neighbour "
+                                       "spacings (default 1.5).")] = None) -> None:
     """Show which sensors count as neighbours for cluster and TFCE corrections."""
+    from ..errors import GlmeegError
     from ..sensors.neighbours import sensor_graph
     from ..results.ownership import check_replaceable
     from ..spec import load_design
@@ -194,8 +224,13 @@ def neighbours(design: Annotated[Path, typer.Argument(help="Design file (TOML)."
     table = None
     if spec.data.neighbours is not None:
         table = read_neighbour_table(design.parent / spec.data.neighbours, label=spec.data.neighbours)
+    if table is not None and (method is not None or max_distance is not None):
+        raise GlmeegError(f"--{'method' if method is not None else 'max-distance'}: applies to "
+                          f"neighbours found from positions; the design file gives the neighbour "
+                          f"table {spec.data.neighbours}")
     graph = sensor_graph(study.sensors, neighbour_table=table, neighbour_label=spec.data.neighbours or "",
-                         sensors_label=spec.data.channels)
+                         sensors_label=spec.data.channels, method=method or "pruned-triangulation",
+                         max_distance=max_distance)
     typer.echo(str(graph))
     if graph.isolated:
         typer.echo(f"warning: {len(graph.isolated)} sensor(s) have no neighbours: "
@@ -210,9 +245,9 @@ def neighbours(design: Annotated[Path, typer.Argument(help="Design file (TOML)."
 @_reports_errors
 def show(result: Annotated[Path, typer.Argument(help="A run's output folder, or one test's folder.")]) -> None:
     """Print a readable summary of saved results."""
-    from ..results import CLINICAL_CAUTION, load_run
+    from ..results import CLINICAL_CAUTION, load_test_results
 
-    for t in load_run(result):
+    for t in load_test_results(result):
         typer.echo(str(t))
     typer.echo(CLINICAL_CAUTION)
 
@@ -263,9 +298,9 @@ def report(results: Annotated[Path, typer.Argument(help="A run's output folder."
                                                        "RESULTS/report.html).")] = None) -> None:
     """Write the self-contained HTML report of a finished run (figures need glmeeg[plots])."""
     from ..report.html import render_report
-    from ..results import load_run_result, write_report
+    from ..results import load_run_folder, write_report
 
-    run = load_run_result(results)
+    run = load_run_folder(results)
     path = write_report(results, render_report(run), out=out)
     typer.echo(f"report written to {path}")
 

@@ -8,11 +8,21 @@ common colour-vision deficiencies) centred at 0 with a symmetric range: positive
 negative t blue, zero white. F maps (never negative) use ``"viridis"``, perceptually uniform and
 colour-blind safe, from 0. Points whose statistic is not finite are drawn grey. Significant
 points are outlined in black. Time courses of several channels take colours from ``"viridis"``
-in front-to-back channel order."""
+in front-to-back channel order.
+
+Sensors on scalp maps
+---------------------
+A sensor with a significant point at the time shown is a black diamond with a white rim
+(``SIGNIFICANT_SENSOR``): black stands out from every colour of ``"RdBu_r"`` and ``"viridis"``
+but their darkest ends (deep blue, deep purple), where the white rim carries it. The other
+sensors are small open rings in dark grey with a faint white halo (``OTHER_SENSOR``,
+``OTHER_SENSOR_HALO``), drawn beneath: a different shape, no fill, so the two never read alike,
+and the map shows through them. The footnote (``SCALP_FOOTNOTE``) says so in words."""
 
 from __future__ import annotations
 
 from pathlib import Path
+from types import MappingProxyType
 from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
@@ -28,6 +38,21 @@ if TYPE_CHECKING:  # pragma: no cover
 
 
 FOOTNOTE = "Outlined or shaded: significant points; these do not establish exact onset or extent."
+
+
+# Keyword arguments of ``Axes.scatter`` for the sensors of a scalp map (see the module docstring).
+SIGNIFICANT_SENSOR = MappingProxyType({"marker": "D", "s": 40.0, "facecolors": "black",
+                                       "edgecolors": "white", "linewidths": 1.0, "zorder": 4,
+                                       "label": "significant", "gid": "significant-sensors"})
+OTHER_SENSOR = MappingProxyType({"marker": "o", "s": 14.0, "facecolors": "none",
+                                 "edgecolors": "0.2", "linewidths": 0.8, "zorder": 3,
+                                 "label": "not significant", "gid": "other-sensors"})
+# A thin light halo under the rings (patheffects.withStroke), so they read on the darkest colours.
+OTHER_SENSOR_HALO = MappingProxyType({"linewidth": 2.2, "foreground": "white", "alpha": 0.6})
+
+
+SCALP_FOOTNOTE = ("Black diamonds: significant sensors; rings: the others. Interpolated, not a "
+                  "source estimate.")
 
 
 T_MAP = "RdBu_r"

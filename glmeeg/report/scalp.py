@@ -1,5 +1,14 @@
 """Scalp maps: the statistic at one time (and frequency) drawn over the head, sensors placed by
-their positions (azimuthal equidistant projection from the vertex), significant sensors marked."""
+their positions (azimuthal equidistant projection from the vertex), significant sensors marked.
+
+The look of the sensors is glmeeg's own: a sensor with a significant point at the time (or in
+the window) shown is a black diamond with a white rim, readable on the red-white-blue map of t
+and on viridis of F; every other sensor is a small open dark-grey ring with a faint white halo.
+The footnote says so. The styles and the footnote's text are
+:data:`glmeeg.report.plotting.SIGNIFICANT_SENSOR`, ``OTHER_SENSOR`` (with
+``OTHER_SENSOR_HALO``) and ``SCALP_FOOTNOTE``; the two sets of markers carry the labels
+``"significant"`` and ``"not significant"``, for a legend.
+"""
 
 from __future__ import annotations
 
@@ -16,8 +25,9 @@ if TYPE_CHECKING:  # pragma: no cover
 
     from ..results import TestResult
 
-from .plotting import (add_footnote, as_result, at_frequency, colormap, frequency_index, new_figure,
-                      statistic_label, statistic_style)
+from .plotting import (OTHER_SENSOR, OTHER_SENSOR_HALO, SCALP_FOOTNOTE, SIGNIFICANT_SENSOR,
+                       add_footnote, as_result, at_frequency, colormap, frequency_index, new_figure,
+                       statistic_label, statistic_style)
 
 
 def _disc_coordinates(positions: np.ndarray) -> np.ndarray:
@@ -62,9 +72,9 @@ def scalp_map(result: "TestResult | str | Path", *, time: float | None = None,
     Positions are projected from the vertex keeping angles as distances (azimuthal
     equidistant; the 90-degree ring at radius 1, nose up) and the values interpolated by a
     thin-plate spline (scipy's RBFInterpolator) inside the head outline. Sensors where some
-    point of the shown time(s) is significant are drawn as white dots, the others as small
-    black dots. An interpolated map shows the sensors' values smoothly; it is not a source
-    estimate.
+    point of the shown time(s) is significant are drawn as black diamonds with a white rim,
+    the others as small open grey rings (see the module docstring). An interpolated map shows
+    the sensors' values smoothly; it is not a source estimate.
     """
     import scipy.interpolate
 
@@ -137,10 +147,13 @@ def scalp_map(result: "TestResult | str | Path", *, time: float | None = None,
     for side in (-1, 1):                                             # ears
         ax.plot(side * radius * (1 + 0.04 * np.sin(np.linspace(0, np.pi, 20))),
                 radius * 0.16 * np.cos(np.linspace(0, np.pi, 20)), color="0.15", lw=1.5)
-    ax.scatter(xy[~marked, 0], xy[~marked, 1], s=6, c="k", zorder=3)
+    if (~marked).any():
+        from matplotlib import patheffects
+
+        rings = ax.scatter(xy[~marked, 0], xy[~marked, 1], **OTHER_SENSOR)
+        rings.set_path_effects([patheffects.withStroke(**OTHER_SENSOR_HALO)])
     if marked.any():
-        ax.scatter(xy[marked, 0], xy[marked, 1], s=30, c="white", edgecolors="k", zorder=4,
-                   label="significant")
+        ax.scatter(xy[marked, 0], xy[marked, 1], **SIGNIFICANT_SENSOR)
     ax.set_aspect("equal")
     ax.set_xlim(-1.2 * radius, 1.2 * radius)
     ax.set_ylim(-1.15 * radius, 1.2 * radius)
@@ -154,5 +167,5 @@ def scalp_map(result: "TestResult | str | Path", *, time: float | None = None,
     ax.set_title(title if title is not None else f"{result.name}: {result.kind} at {when}{at}",
                  fontsize="medium")
     if footnote:
-        add_footnote(fig, "White dots: sensors with significant points; interpolated, not a source estimate.")
+        add_footnote(fig, SCALP_FOOTNOTE)
     return fig

@@ -1,13 +1,23 @@
 """The neighbour graph of sensors: which channels count as adjacent for clusters and TFCE.
 
 Which sensors are neighbours (:class:`SensorGraph`) is decided by :func:`sensor_graph`: from an
-explicit neighbour table, else from the sensors' positions (a triangulation of the scalp, see
-:func:`neighbours_from_positions`), else from the standard positions of 10-10 names
-(:func:`glmeeg.sensors.standard_positions`).
+explicit neighbour table, else from the sensors' positions, else from the standard positions of
+10-10 names (:func:`glmeeg.sensors.standard_positions`).
+
+From positions there are two methods (:func:`neighbours_from_positions`), named after what they
+compute:
+
+- ``"pruned-triangulation"`` (default): the Delaunay triangulation of the positions projected
+  flat from the vertex, its edges much longer than the local sensor spacing pruned;
+- ``"radius"``: every sensor within a radius, given in median nearest-neighbour spacings.
+
+The names ``"triangulation"`` and ``"distance"`` of glmeeg 0.1 are still accepted, with a
+:class:`DeprecationWarning`, until the next release (``DEPRECATED_METHODS``).
 """
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -19,7 +29,7 @@ from ..errors import GlmeegError, StudyError
 from .positions import standard_positions
 
 __all__ = ["SensorGraph", "neighbours_from_positions", "neighbours_from_table", "sensor_graph",
-           "LONG_EDGE_FACTOR", "DEFAULT_DISTANCE"]
+           "LONG_EDGE_FACTOR", "DEFAULT_DISTANCE", "METHODS", "DEPRECATED_METHODS"]
 
 # ---------------------------------------------------------------------------------------------
 # Neighbour graph of sensors
@@ -29,13 +39,29 @@ __all__ = ["SensorGraph", "neighbours_from_positions", "neighbours_from_table", 
 # its two end sensors' local spacings (median length of a sensor's other triangulation edges).
 # See neighbours_from_positions, Notes.
 LONG_EDGE_FACTOR = 2.5
-# Default neighbour distance of method="distance", in median nearest-neighbour distances.
+# Default radius of method="radius", in median nearest-neighbour distances.
 DEFAULT_DISTANCE = 1.5
 # Relative size under which two Delaunay triangles count as sharing one circumcircle.
 _COCIRCULAR_TOL = 1e-6
 # Relative distance under which two sensors count as being at the same place.
 _SAME_PLACE_TOL = 1e-9
-_METHODS = ("triangulation", "distance")
+# The methods of neighbours_from_positions, and the names they had in glmeeg 0.1 (accepted with a
+# DeprecationWarning for one release; nothing saved records them, so nothing else needs mapping).
+METHODS = ("pruned-triangulation", "radius")
+DEPRECATED_METHODS = {"triangulation": "pruned-triangulation", "distance": "radius"}
+
+
+def _method(method: object, *, stacklevel: int) -> str:
+    """``method`` checked and under its current name (a deprecated name warns, from the caller of
+    the public function: ``stacklevel`` counts from here)."""
+    if isinstance(method, str) and method in DEPRECATED_METHODS:
+        new = DEPRECATED_METHODS[method]
+        warnings.warn(f"neighbour method {method!r} is now called {new!r}; the old name will stop "
+                      "working in the next release", DeprecationWarning, stacklevel=stacklevel + 1)
+        return new
+    if not (isinstance(method, str) and method in METHODS):
+        raise GlmeegError(f"neighbour method must be one of {', '.join(METHODS)}; got {method!r}")
+    return method
 
 
 @dataclass(frozen=True, eq=False)
@@ -320,7 +346,7 @@ def _few(names: list[str], k: int = 8) -> str:
     return ", ".join(names[:k]) + more
 
 
-def neighbours_from_positions(channels, positions, *, method: str = "triangulation",
+def neighbours_from_positions(channels, positions, *, method: str = "pruned-triangulation",
                               max_distance: float | None = None,
                               label: str = "sensor positions") -> SensorGraph:
     """Neighbouring sensors from their 3-D positions.
@@ -331,11 +357,14 @@ def neighbours_from_positions(channels, positions, *, method: str = "triangulati
         Channel names, unique, in the data's channel order.
     positions : array_like, shape (C, 3)
         x, y, z of every channel, on or near a sphere (any unit, any origin).
-    method : {"triangulation", "distance"}, default "triangulation"
-        ``"triangulation"``: neighbours share an edge of a triangulation of the scalp (see
-        Notes). ``"distance"``: neighbours are closer than ``max_distance``.
+    method : {"pruned-triangulation", "radius"}, default "pruned-triangulation"
+        ``"pruned-triangulation"``: neighbours share an edge of the Delaunay triangulation of
+        the projected positions, edges far longer than the local spacing pruned (see Notes).
+        ``"radius"``: neighbours are within ``max_distance`` of each other. The names
+        ``"triangulation"`` and ``"distance"`` of glmeeg 0.1 still work, with a
+        ``DeprecationWarning``.
     max_distance : float, optional
-        Only for ``method="distance"``: the largest straight-line distance between neighbours,
+        Only for ``method="radius"``: the largest straight-line distance between neighbours,
         as a **multiple of the median nearest-neighbour distance** of the layout (default
         ``1.5``). Being relative, the same value means the same for positions in metres,
         millimetres or on the unit sphere of the 10-10 fallback; 1.5 takes in the four diagonal
@@ -346,6 +375,8 @@ def neighbours_from_positions(channels, positions, *, method: str = "triangulati
     Returns
     -------
     SensorGraph
+        Its ``method`` starts with the method's name (``"pruned-triangulation of ..."``,
+        ``"radius of 1.5 x the median nearest-neighbour spacing of ..."``).
 
     Raises
     ------
@@ -356,7 +387,7 @@ def neighbours_from_positions(channels, positions, *, method: str = "triangulati
 
     Notes
     -----
-    **Triangulation** (default). The sensors are mapped onto a plane by the azimuthal
+    **Pruned triangulation** (default). The sensors are mapped onto a plane by the azimuthal
     equidistant projection [2]_ from the vertex: each sensor goes to the point whose distance
     from the origin is its angle from the vertex and whose direction is its azimuth around it.
     Directions are taken from the centre of the least-squares sphere through the positions, and
@@ -370,14 +401,15 @@ def neighbours_from_positions(channels, positions, *, method: str = "triangulati
     left-right symmetric layout gives a left-right symmetric graph. One or two sensors, or
     sensors along one line, are joined in a chain.
 
-    Triangulation is the default because it has no distance to tune and adapts to uneven
-    density: each sensor is joined to the sensors around it, wherever the cap is dense or
-    sparse, whereas one distance threshold either isolates sensors in sparse regions or joins
-    far too many in dense ones.
+    The pruned triangulation is the default because it has no distance to tune and adapts to
+    uneven density: each sensor is joined to the sensors around it, wherever the cap is dense
+    or sparse, whereas one radius either isolates sensors in sparse regions or joins far too
+    many in dense ones.
 
-    **Long edges.** The triangulation of a plane covers the convex hull of the points, so along
-    a concave stretch of the rim (a cap without frontal sensors, a U-shaped montage, the open
-    side of an arc) it joins rim sensors that are far apart across a region with no sensors.
+    **Long edges (the pruning).** The triangulation of a plane covers the convex hull of the
+    points, so along a concave stretch of the rim (a cap without frontal sensors, a U-shaped
+    montage, the open side of an arc) it joins rim sensors that are far apart across a region
+    with no sensors.
     Such an edge is dropped when it is longer than ``LONG_EDGE_FACTOR`` (2.5) times the larger
     *local spacing* of its two ends, a sensor's local spacing being the median length of its
     other triangulation edges. Lengths are straight-line 3-D distances, so the stretching of
@@ -391,7 +423,7 @@ def neighbours_from_positions(channels, positions, *, method: str = "triangulati
     of a sparse region of an uneven cap, as a threshold on the median edge length of the whole
     layout would. Three sensors not on one line are all neighbours of one another.
 
-    **Distance.** Two sensors are neighbours when their straight-line 3-D distance is at most
+    **Radius.** Two sensors are neighbours when their straight-line 3-D distance is at most
     ``max_distance`` times the median nearest-neighbour distance. Sensors farther than that from all
     others are isolated.
 
@@ -409,10 +441,9 @@ def neighbours_from_positions(channels, positions, *, method: str = "triangulati
     >>> g.neighbours("Cz")
     ('Fz', 'C3', 'C4', 'Pz')
     """
-    if method not in _METHODS:
-        raise GlmeegError(f"neighbour method must be one of {', '.join(_METHODS)}; got {method!r}")
-    if max_distance is not None and method != "distance":
-        raise GlmeegError("max_distance applies to method='distance' only")
+    method = _method(method, stacklevel=2)
+    if max_distance is not None and method != "radius":
+        raise GlmeegError("max_distance applies to method='radius' only")
     if max_distance is not None and not (isinstance(max_distance, (int, float, np.integer, np.floating))
                                          and np.isfinite(max_distance) and max_distance > 0):
         raise GlmeegError(f"max_distance must be a positive number (multiples of the median "
@@ -420,10 +451,9 @@ def neighbours_from_positions(channels, positions, *, method: str = "triangulati
     channels = _check_channels(channels, label)
     pos = _check_positions(channels, positions, label)
     n = len(channels)
-    if method == "distance":
+    if method == "radius":
         factor = DEFAULT_DISTANCE if max_distance is None else float(max_distance)
-        desc = (f"neighbours within {factor:g} x the median nearest-neighbour distance "
-                f"of {label}")
+        desc = f"radius of {factor:g} x the median nearest-neighbour spacing of {label}"
         if n < 2:
             return _make_graph(channels, np.empty((0, 2)), desc)
         tree = cKDTree(pos)
@@ -436,7 +466,7 @@ def neighbours_from_positions(channels, positions, *, method: str = "triangulati
     length = np.linalg.norm(pos[edges[:, 0]] - pos[edges[:, 1]], axis=1)
     keep = length <= LONG_EDGE_FACTOR * _other_edge_spacing(edges, length, n)
     dropped = int((~keep).sum())
-    desc = f"triangulation of {label}"
+    desc = f"pruned-triangulation of {label}"
     if dropped:
         desc += f"; {dropped} long edge{'s' if dropped > 1 else ''} dropped"
     return _make_graph(channels, edges[keep], desc)
@@ -501,7 +531,7 @@ def neighbours_from_table(channels, table: pd.DataFrame, *, label: str) -> Senso
 # --- entry point ------------------------------------------------------------------------------
 
 def sensor_graph(sensors: pd.DataFrame, *, neighbour_table: pd.DataFrame | None = None,
-                 neighbour_label: str = "", method: str = "triangulation",
+                 neighbour_label: str = "", method: str = "pruned-triangulation",
                  max_distance: float | None = None,
                  sensors_label: str = "sensors table") -> SensorGraph:
     """The neighbour graph of a study's sensors, from the best source available.
@@ -523,10 +553,12 @@ def sensor_graph(sensors: pd.DataFrame, *, neighbour_table: pd.DataFrame | None 
         Explicit neighbour list (see :func:`neighbours_from_table`).
     neighbour_label : str, default ""
         File name of the neighbour table, for messages.
-    method : {"triangulation", "distance"}, default "triangulation"
-        How to find neighbours from positions (see :func:`neighbours_from_positions`).
+    method : {"pruned-triangulation", "radius"}, default "pruned-triangulation"
+        How to find neighbours from positions (see :func:`neighbours_from_positions`; the
+        glmeeg 0.1 names ``"triangulation"`` and ``"distance"`` still work, with a
+        ``DeprecationWarning``).
     max_distance : float, optional
-        For ``method="distance"``, in multiples of the median nearest-neighbour distance.
+        For ``method="radius"``, in multiples of the median nearest-neighbour distance.
     sensors_label : str, default "sensors table"
         File name of the sensors table, for messages.
 
@@ -544,13 +576,13 @@ def sensor_graph(sensors: pd.DataFrame, *, neighbour_table: pd.DataFrame | None 
     Notes
     -----
     Any number of channels works: one channel has no neighbours, two are neighbours of each
-    other, more are triangulated (see :func:`neighbours_from_positions`).
+    other, more are joined by the chosen method (see :func:`neighbours_from_positions`).
 
     Examples
     --------
     >>> g = sensor_graph(pd.DataFrame({"name": ["Fpz", "Fz", "Cz", "Pz", "Oz"]}))
     >>> g.method
-    'triangulation of standard 10-10 positions of the channel names (sensors table has no x, y, z); 1 long edge dropped'
+    'pruned-triangulation of standard 10-10 positions of the channel names (sensors table has no x, y, z); 1 long edge dropped'
     >>> g.edges.tolist()  # the midline: a chain
     [[0, 1], [1, 2], [2, 3], [3, 4]]
     """
@@ -560,7 +592,7 @@ def sensor_graph(sensors: pd.DataFrame, *, neighbour_table: pd.DataFrame | None 
     if neighbour_table is not None:
         return neighbours_from_table(channels, neighbour_table,
                                      label=neighbour_label or "neighbour table")
-    opts = {"method": method, "max_distance": max_distance}
+    opts = {"method": _method(method, stacklevel=2), "max_distance": max_distance}
     has_xyz = all(c in sensors.columns for c in ("x", "y", "z"))
     if has_xyz:
         pos = sensors[["x", "y", "z"]].apply(pd.to_numeric, errors="coerce").to_numpy(dtype=float)
