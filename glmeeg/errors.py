@@ -12,11 +12,30 @@ __all__ = ["GlmeegError", "DesignFileError", "StudyError", "FormulaError", "Cont
 
 
 class GlmeegError(ValueError):
-    """Base class of every input error glmeeg reports to its user."""
+    """Base class of every input error glmeeg reports to its user.
 
-    def __init__(self, message: str) -> None:
+    ``parameter`` names the keyword, option or key at fault when the error is about one (made
+    with :meth:`of`): the message then reads ``"parameter: detail"``, and a caller that names
+    its parameters otherwise (the command line's options) renames it from the data, not from
+    the text.
+    """
+
+    def __init__(self, message: str, *, parameter: str | None = None) -> None:
         # One line, always: a message built from user data must not break the CLI's contract.
-        super().__init__(" ".join(str(message).split()))
+        self.detail = " ".join(str(message).split())
+        self.parameter = parameter
+        super().__init__(f"{parameter}: {self.detail}" if parameter else self.detail)
+
+    @classmethod
+    def of(cls, parameter: str, message: str) -> "GlmeegError":
+        """An error about one parameter: ``cls.of("n", "expected at least 3, got 2")``."""
+        return cls(message, parameter=parameter)
+
+    def renamed(self, names: dict[str, str]) -> "GlmeegError":
+        """The same error with its parameter renamed by ``names`` (itself when not listed)."""
+        if self.parameter not in names:
+            return self
+        return type(self)(self.detail, parameter=names[self.parameter])
 
 
 class DesignFileError(GlmeegError):

@@ -19,7 +19,7 @@ from statsmodels.stats.proportion import proportion_confint
 from typer.testing import CliRunner
 
 import glmeeg
-from conftest import write_study
+from glmeeg.testing import write_study
 from glmeeg.axes import Axes
 from glmeeg.cli import app
 from glmeeg.errors import ModelError
@@ -291,12 +291,14 @@ def test_too_few_per_group_and_joint_tests():
 # --------------------------------------------------------------------------- command line
 
 def invoke(*args):
-    return CliRunner().invoke(app, ["power", *[str(a) for a in args]])
+    """``glmeeg simulate-power ARGS``, or ``glmeeg power ...`` when the first argument is "power"."""
+    args = [str(a) for a in args]
+    return CliRunner().invoke(app, args if args[:1] == ["power"] else ["simulate-power", *args])
 
 
 def test_cli_json_is_one_object(saved):
     _, out = saved
-    result = invoke("--from", out / "b-vs-a", "--n", "6,10", "--simulations", "20", "--json")
+    result = invoke(out / "b-vs-a", "--n", "6,10", "--simulations", "20", "--json")
     assert result.exit_code == 0, result.output
     record = json.loads(result.stdout)
     assert record["n"] == [6, 10] and record["simulations"] == 20 and record["test"] == "b-vs-a"
@@ -309,7 +311,7 @@ def test_cli_json_is_one_object(saved):
 def test_cli_table_and_csv(saved, tmp_path):
     _, out = saved
     path = tmp_path / "power.csv"
-    result = invoke("--from", out / "b-cluster", "--n", "6,8", "--simulations", "10", "--permutations", "40",
+    result = invoke(out / "b-cluster", "--n", "6,8", "--simulations", "10", "--permutations", "40",
                     "--effect-scale", "0.5", "--seed", "2", "--csv", path)
     assert result.exit_code == 0, result.output
     assert "Simulated power: test b-cluster" in result.stdout and f"table written to {path}" in result.stdout
@@ -322,26 +324,22 @@ def test_cli_table_and_csv(saved, tmp_path):
 
 
 @pytest.mark.parametrize(("args", "fragment"), [
-    (["--from", "{out}/b-vs-a", "--n", "8", "--effect-size", "0.5"], "--effect-size: applies to the parametric"),
-    (["--from", "{out}/b-vs-a", "--n", "8", "--design", "one-sample"], "--design: applies"),
-    (["--from", "{out}/b-vs-a", "--n", "8", "--curve", "8,9"], "--curve: applies"),
-    (["--from", "{out}", "--n", "8"], "is a run folder"),
-    (["--from", "{out}/nope", "--n", "8"], "no saved glmeeg result"),
-    (["--from", "{out}/b-vs-a"], "--n: give the sample sizes"),
-    (["--from", "{out}/b-vs-a", "--n", "1"], "--n: expected at least 2"),
-    (["--from", "{out}/b-vs-a", "--n", "a,b"], "--n: expected comma-separated"),
-    (["--from", "{out}/b-vs-a", "--n", "8", "--simulations", "0"], "--simulations: expected at least 1"),
-    (["--from", "{out}/b-vs-a", "--n", "8", "--effect-scale", "0"], "--effect-scale: expected"),
-    (["--from", "{out}/b-vs-a", "--n", "8", "--correction", "bogus"], "--correction: unknown correction"),
-    (["--from", "{out}/b-vs-a", "--n", "8", "--permutations", "100"], "--permutations: applies"),
-    (["--from", "{out}/b-cluster", "--n", "8", "--permutations", "5"], "--permutations: 5 resamplings"),
-    (["--from", "{out}/b-vs-a", "--n", "8", "--neighbours", "nb.csv"], "--neighbours: applies"),
-    (["--from", "{out}/b-vs-a", "--n", "8", "--csv", "{out}"], "--csv:"),
-    (["--from", "{out}/b-vs-a", "--n", "8", "--csv", "{out}/missing/p.csv"], "does not exist"),
-    (["--design", "one-sample", "--effect-size", "0.5", "--power", "0.8", "--simulations", "9"],
-     "--simulations: applies with --from"),
-    (["--effect-size", "0.5", "--power", "0.8"], "--design: required"),
-    (["--design", "paired", "--effect-size", "0.5", "--n", "12,16"], "--n: expected a whole number"),
+    (["{out}", "--n", "8"], "is a run folder"),
+    (["{out}/nope", "--n", "8"], "no saved glmeeg result"),
+    (["{out}/b-vs-a"], "--n: give the sample sizes"),
+    (["{out}/b-vs-a", "--n", "1"], "--n: expected at least 2"),
+    (["{out}/b-vs-a", "--n", "a,b"], "--n: expected comma-separated"),
+    (["{out}/b-vs-a", "--n", "8", "--simulations", "0"], "--simulations: expected at least 1"),
+    (["{out}/b-vs-a", "--n", "8", "--effect-scale", "0"], "--effect-scale: expected"),
+    (["{out}/b-vs-a", "--n", "8", "--correction", "bogus"], "--correction: unknown correction"),
+    (["{out}/b-vs-a", "--n", "8", "--permutations", "100"], "--permutations: applies"),
+    (["{out}/b-cluster", "--n", "8", "--permutations", "5"], "--permutations: 5 resamplings"),
+    (["{out}/b-vs-a", "--n", "8", "--neighbours", "nb.csv"], "--neighbours: applies"),
+    (["{out}/b-vs-a", "--n", "8", "--csv", "{out}"], "--csv:"),
+    (["{out}/b-vs-a", "--n", "8", "--csv", "{out}/missing/p.csv"], "does not exist"),
+    (["power", "--effect-size", "0.5", "--power", "0.8"], "--design: required"),
+    (["power", "--design", "paired", "--effect-size", "0.5", "--n", "12,16"], "--n: expected a whole number"),
+    (["power", "--design", "paired", "--effect-size", "-1", "--n", "12"], "--effect-size:"),
 ])
 def test_cli_bad_input_exits_2_with_one_line(saved, args, fragment):
     _, out = saved

@@ -13,6 +13,8 @@ from typing import Annotated, Optional
 
 import typer
 
+from .. import defaults
+
 app = typer.Typer(name="glmeeg", add_completion=False, no_args_is_help=True,
                   pretty_exceptions_enable=False,
                   help="Mass-univariate GLM statistics for epoched EEG: single-trial regressions in "
@@ -146,35 +148,17 @@ def run(design: Annotated[Path, typer.Argument(help="Design file (TOML).")],
     Finished subject fits are kept in OUT/subject-fits: a run that was interrupted, or a re-run
     with other tests, refits only what changed.
     """
-    from ..subject_level.cache import CACHE_FOLDER
-    from ..errors import GlmeegError
     from ..parallel import parse_size
     from ..pipeline import plan_analysis, run_analysis
+    from ..subject_level.cache import CACHE_FOLDER
     from ..results import check_output_folder, write_run
 
     limit = None if memory_limit is None else parse_size(memory_limit)
     out = check_output_folder(out)  # before fitting: a wrong --out should cost nothing
-    plan = plan_analysis(design)
-    made = [p for p in (Path(out), *Path(out).absolute().parents) if not p.exists()]
-    try:
-        result = run_analysis(plan, progress=_progress(quiet, verbose), memory_limit=limit,
-                              workers=workers, scheduler=scheduler, cache=Path(out) / CACHE_FOLDER,
-                              refit=refit)
-    except GlmeegError:
-        for p in made:  # folders the run made for its cache and left empty
-            try:
-                p.rmdir()
-            except OSError:
-                break
-        raise
+    result = run_analysis(plan_analysis(design), progress=_progress(quiet, verbose), memory_limit=limit,
+                          workers=workers, scheduler=scheduler, cache=Path(out) / CACHE_FOLDER, refit=refit)
     _close_progress()
     write_run(result, out, report=None if no_report else _report(result))
-    from ..subject_level.cache import FitCache
-    from ..pipeline import subject_jobs
-
-    # Fits of earlier data or subject models are not needed again.
-    FitCache(Path(out) / CACHE_FOLDER).prune({j.key for j in subject_jobs(
-        plan, hashes=result.provenance.input_sha256)})
     if not quiet:
         typer.echo(str(result))
         typer.echo(f"results written to {out}")
@@ -325,10 +309,10 @@ def schema(out: Annotated[Optional[Path], typer.Option("--out", "-o", help="Writ
 _POWER_OPTIONS = {"effect_size": "--effect-size", "n": "--n", "alpha": "--alpha", "power": "--power",
                   "design": "--design", "alternative": "--alternative",
                   "df_numerator": "--df-numerator", "groups": "--groups", "n_values": "--curve"}
-# simulate_power's keywords, as the options of `glmeeg power --from`.
+# simulate_power's keywords, as the options of `glmeeg simulate-power`.
 _SIMULATION_OPTIONS = {"n": "--n", "simulations": "--simulations", "effect_scale": "--effect-scale",
                        "permutations": "--permutations", "correction": "--correction", "alpha": "--alpha",
-                       "seed": "--seed", "graph": "--neighbours", "result": "--from"}
+                       "seed": "--seed", "graph": "--neighbours", "result": "TEST"}
 
 
 def _parse_curve(text: str, option: str = "--curve") -> list[float]:
@@ -352,45 +336,38 @@ def _one_n(text: str | None):
     try:
         value = float(text)
     except ValueError:
-        hint = " (a list of sizes goes with --from; see also --curve)" if "," in text else ""
+        hint = (" (a list of sizes: --curve, or glmeeg simulate-power for a saved test)"
+                if "," in text else "")
         raise GlmeegError(f"--n: expected a whole number of participants, got {text!r}{hint}") from None
     return int(value) if value.is_integer() else value
 
 
-_POWER_HELP = ("Solve the missing one of effect size, n, power (or alpha) of a t or F test; or, with "
-               "--from, simulate the power of a saved test's real design.\n\n"
+_POWER_HELP = ("Solve the missing one of effect size, n, power (or alpha) of a t or F test.\n\n"
                "Leave out exactly one of --effect-size, --n and --power, and it is solved; --alpha "
-               "is 0.05 unless given. To solve alpha, give the other three and --solve alpha. The "
-               "numbers come from the exact noncentral t or F distribution (Cohen, 1988) and hold "
-               "for one test at --alpha: a correction over many points lowers the effective alpha.\n\n"
-               "With --from RESULTS/TEST (a saved test's folder) and --n 12,16,24,32, new studies of "
-               "each n are simulated from the test's effect map and its subjects' noise maps and "
-               "analysed with the same group test and correction; the share that detect the effect "
-               "(any significant point; a significant point in the test's significant region) is "
-               "the power, with its Monte-Carlo error (glmeeg.planning.simulated.simulate_power).")
+               f"is {defaults.ALPHA:g} unless given. To solve alpha, give the other three and --solve "
+               "alpha. The numbers come from the exact noncentral t or F distribution (Cohen, 1988) "
+               "and hold for one test at --alpha: a correction over many points lowers the effective "
+               "alpha; `glmeeg simulate-power` simulates the real, corrected design of a saved test.")
 
 
 @app.command("power", help=_POWER_HELP)
 @_reports_errors
 def power_command(
         design: Annotated[Optional[str], typer.Option("--design", help="one-sample | paired | "
-                          "two-sample | f (not with --from).")] = None,
+                          "two-sample | f (required).")] = None,
         effect_size: Annotated[Optional[float], typer.Option("--effect-size", help="Cohen's d "
                                "(one-sample, two-sample), dz (paired) or f (F test), >= 0, in the "
                                "direction of --alternative.")] = None,
         n: Annotated[Optional[str], typer.Option("--n", help="Participants: per group for "
-                     "two-sample (equal groups), in total otherwise. With --from: the sizes to "
-                     "simulate, comma-separated (per group for designs with groups).")] = None,
+                     "two-sample (equal groups), in total otherwise.")] = None,
         target_power: Annotated[Optional[float], typer.Option("--power", help="Power, in (0, 1).")] = None,
         alpha: Annotated[Optional[float], typer.Option("--alpha", help="Significance level of one "
-                         "test, in (0, 1); 0.05 unless solved with --solve alpha. With --from: "
-                         "default the saved test's.")] = None,
+                         f"test, in (0, 1); {defaults.ALPHA:g} unless solved with --solve alpha.")] = None,
         solve: Annotated[Optional[str], typer.Option("--solve", help="Quantity to solve: n | "
                          "effect-size | power | alpha. Optional: inferred when exactly one of "
                          "--effect-size, --n, --power is left out; needed only for alpha.")] = None,
-        alternative: Annotated[Optional[str], typer.Option("--alternative", help="two-sided | "
-                               "greater | less (t designs; F tests are two-sided). Default "
-                               "two-sided.")] = None,
+        alternative: Annotated[str, typer.Option("--alternative", help="two-sided | greater | less "
+                               "(t designs; F tests are two-sided).")] = "two-sided",
         df_numerator: Annotated[Optional[int], typer.Option("--df-numerator", help="F: numerator "
                                 "df (k - 1 for a one-way ANOVA of k groups).")] = None,
         groups: Annotated[Optional[int], typer.Option("--groups", help="F: parameters of the full "
@@ -400,30 +377,8 @@ def power_command(
                          "these sample sizes, e.g. 16,24,32.")] = None,
         plot: Annotated[Optional[Path], typer.Option("--plot", help="With --curve: draw the power "
                         "curve into this PNG file (needs glmeeg[plots]).")] = None,
-        from_result: Annotated[Optional[Path], typer.Option("--from", help="Simulate from this saved "
-                               "test (a test's folder in a run's output, RESULTS/TEST).")] = None,
-        simulations: Annotated[Optional[int], typer.Option("--simulations", help="With --from: "
-                               "simulated studies per n (default 200).")] = None,
-        correction: Annotated[Optional[str], typer.Option("--correction", help="With --from: none | "
-                              "bonferroni | holm | fdr | max | cluster | tfce; default the test's own "
-                              "(with its settings).")] = None,
-        permutations: Annotated[Optional[int], typer.Option("--permutations", help="With --from: "
-                                "resamplings per simulated study for max / cluster / tfce (default "
-                                "500).")] = None,
-        effect_scale: Annotated[Optional[float], typer.Option("--effect-scale", help="With --from: "
-                                "factor on the test's observed effect, > 0 (default 1; below 1 "
-                                "allows for a pilot effect inflated by selection).")] = None,
-        seed: Annotated[Optional[int], typer.Option("--seed", help="With --from: seed of the "
-                        "simulation (default 0).")] = None,
-        neighbours: Annotated[Optional[Path], typer.Option("--neighbours", help="With --from, cluster "
-                              "and tfce: neighbour table (CSV: channel, neighbour; written by glmeeg "
-                              "neighbours DESIGN --out FILE); default: from the 10-10 channel names.")] = None,
-        csv: Annotated[Optional[Path], typer.Option("--csv", help="With --from: also write the "
-                       "table (n, total_n, criterion, detections, simulations, probability, "
-                       "standard_error, low, high) to this CSV file.")] = None,
         as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False) -> None:
-    """Power and sample size of a t or F test (see ``glmeeg.planning.analytic.solve_power``), or simulated
-    power of a saved test (``glmeeg.planning.simulated.simulate_power``)."""
+    """Power and sample size of one t or F test (``glmeeg.planning.analytic.solve_power``)."""
     import json
 
     from ..errors import GlmeegError
@@ -433,49 +388,12 @@ def power_command(
         from ..results.ownership import check_replaceable
 
         check_replaceable(plot, kind="png", label="--plot")
-    if from_result is not None:
-        parametric = {"--design": design, "--effect-size": effect_size, "--power": target_power,
-                      "--solve": solve, "--alternative": alternative, "--df-numerator": df_numerator,
-                      "--groups": groups, "--curve": curve, "--plot": plot}
-        for option, value in parametric.items():
-            if value is not None:
-                raise GlmeegError(f"{option}: applies to the parametric calculation, not with --from "
-                                  "(simulated power)")
-        _simulated_power(from_result, n=n, alpha=alpha, simulations=simulations, correction=correction,
-                         permutations=permutations, effect_scale=effect_scale, seed=seed,
-                         neighbours=neighbours, csv=csv, as_json=as_json)
-        return
-    simulation = {"--simulations": simulations, "--correction": correction, "--permutations": permutations,
-                  "--effect-scale": effect_scale, "--seed": seed, "--neighbours": neighbours, "--csv": csv}
-    for option, value in simulation.items():
-        if value is not None:
-            raise GlmeegError(f"{option}: applies with --from RESULT (simulated power) only")
+        if curve is None:
+            raise GlmeegError("--plot: draws the power curve; give --curve too (e.g. --curve 12,16,24,32)")
     if design is None:
-        raise GlmeegError("--design: required: one of one-sample, paired, two-sample, f (or --from "
-                          "RESULT for simulated power)")
-    alternative = "two-sided" if alternative is None else alternative
+        raise GlmeegError("--design: required: one of one-sample, paired, two-sample, f")
     n = _one_n(n)
-    given = {"effect-size": effect_size, "n": n, "power": target_power}
-    if solve is not None:
-        if solve not in ("n", "effect-size", "power", "alpha"):
-            raise GlmeegError(f"--solve: expected one of n, effect-size, power, alpha, got {solve!r}")
-        if solve == "alpha" and alpha is not None:
-            raise GlmeegError("--solve alpha: leave out --alpha, the quantity solved")
-        if solve != "alpha" and given[solve] is not None:
-            raise GlmeegError(f"--solve {solve}: leave out --{solve}, the quantity solved")
-    missing = [name for name, value in given.items() if value is None]
-    if solve == "alpha" and missing:
-        raise GlmeegError(f"--solve alpha: give --effect-size, --n and --power; missing "
-                          f"{', '.join('--' + m for m in missing)}")
-    if len(missing) > 1:
-        raise GlmeegError(f"more than one unknown: {' and '.join('--' + m for m in missing)} are "
-                          f"missing; give all but one of --effect-size, --n, --power")
-    if not missing and solve != "alpha":
-        raise GlmeegError("nothing to solve: leave out one of --effect-size, --n, --power "
-                          "(or give all three and --solve alpha)")
-    if solve != "alpha" and alpha is None:
-        alpha = 0.05
-
+    solve, alpha = _what_to_solve(solve, alpha, effect_size=effect_size, n=n, power=target_power)
     try:
         solution = solve_power(design=design, effect_size=effect_size, n=n, alpha=alpha,
                                power=target_power, alternative=alternative,
@@ -485,16 +403,9 @@ def power_command(
             table = power_curve(design=design, effect_size=solution.effect_size, alpha=solution.alpha,
                                 n_values=_parse_curve(curve), alternative=alternative,
                                 df_numerator=df_numerator, groups=groups)
-    except GlmeegError as e:
-        # The library names its keywords; here the user typed options.
-        name, sep, rest = str(e).partition(": ")
-        if sep and name in _POWER_OPTIONS:
-            raise GlmeegError(f"{_POWER_OPTIONS[name]}: {rest}") from None
-        raise
-
+    except GlmeegError as e:  # the library names its keywords; here the user typed options
+        raise e.renamed(_POWER_OPTIONS) from None
     if plot is not None:
-        if table is None:
-            raise GlmeegError("--plot: draws the power curve; give --curve too (e.g. --curve 12,16,24,32)")
         from ..report.figures import power_curve_figure
         from ..results import write_figure
 
@@ -516,21 +427,80 @@ def power_command(
         typer.echo(table.to_string(index=False, float_format=lambda x: f"{x:.4f}"))
 
 
-def _simulated_power(from_result: Path, *, n: str | None, alpha, simulations, correction, permutations,
-                     effect_scale, seed, neighbours: Path | None, csv: Path | None, as_json: bool) -> None:
-    """``glmeeg power --from``: simulated power of a saved test."""
+def _what_to_solve(solve: str | None, alpha: float | None, **given) -> tuple[str | None, float | None]:
+    """The quantity to solve and the alpha to use, from what the user left out."""
+    from ..errors import GlmeegError
+
+    names = {"effect_size": "effect-size", "n": "n", "power": "power"}
+    if solve is not None:
+        if solve not in ("n", "effect-size", "power", "alpha"):
+            raise GlmeegError(f"--solve: expected one of n, effect-size, power, alpha, got {solve!r}")
+        if solve == "alpha" and alpha is not None:
+            raise GlmeegError("--solve alpha: leave out --alpha, the quantity solved")
+        if solve != "alpha" and given[solve.replace("-", "_")] is not None:
+            raise GlmeegError(f"--solve {solve}: leave out --{solve}, the quantity solved")
+    missing = [names[k] for k, v in given.items() if v is None]
+    if solve == "alpha" and missing:
+        raise GlmeegError(f"--solve alpha: give --effect-size, --n and --power; missing "
+                          f"{', '.join('--' + m for m in missing)}")
+    if len(missing) > 1:
+        raise GlmeegError(f"more than one unknown: {' and '.join('--' + m for m in missing)} are "
+                          f"missing; give all but one of --effect-size, --n, --power")
+    if not missing and solve != "alpha":
+        raise GlmeegError("nothing to solve: leave out one of --effect-size, --n, --power "
+                          "(or give all three and --solve alpha)")
+    return solve, (defaults.ALPHA if solve != "alpha" and alpha is None else alpha)
+
+
+_SIMULATE_HELP = ("Simulate the power of a saved test's own design at other sample sizes.\n\n"
+                  "New studies of each n are drawn from the test's effect map and its subjects' noise "
+                  "maps and analysed with the same group test and correction; the share that detect "
+                  "the effect (any significant point; a significant point in the test's significant "
+                  "region) is the power, with its Monte-Carlo error "
+                  "(glmeeg.planning.simulated.simulate_power).")
+
+
+@app.command("simulate-power", help=_SIMULATE_HELP)
+@_reports_errors
+def simulate_power_command(
+        test: Annotated[Path, typer.Argument(help="A saved test's folder in a run's output "
+                        "(RESULTS/TEST).")],
+        n: Annotated[Optional[str], typer.Option("--n", help="The sample sizes to simulate, "
+                     "comma-separated (per group for designs with groups).")] = None,
+        alpha: Annotated[Optional[float], typer.Option("--alpha", help="Significance level; default "
+                         "the saved test's.")] = None,
+        simulations: Annotated[Optional[int], typer.Option("--simulations", help="Simulated studies "
+                               f"per n (default {defaults.SIMULATIONS}).")] = None,
+        correction: Annotated[Optional[str], typer.Option("--correction", help="none | bonferroni | "
+                              "holm | fdr | max | cluster | tfce; default the test's own (with its "
+                              "settings).")] = None,
+        permutations: Annotated[Optional[int], typer.Option("--permutations", help="Resamplings per "
+                                "simulated study for max / cluster / tfce (default "
+                                f"{defaults.SIMULATED_PERMUTATIONS}).")] = None,
+        effect_scale: Annotated[Optional[float], typer.Option("--effect-scale", help="Factor on the "
+                                "test's observed effect, > 0 (default 1; below 1 allows for a pilot "
+                                "effect inflated by selection).")] = None,
+        seed: Annotated[Optional[int], typer.Option("--seed", help="Seed of the simulation "
+                        "(default 0).")] = None,
+        neighbours: Annotated[Optional[Path], typer.Option("--neighbours", help="Cluster and tfce: "
+                              "neighbour table (CSV: channel, neighbour; written by glmeeg "
+                              "neighbours DESIGN --out FILE); default: from the 10-10 channel names.")] = None,
+        csv: Annotated[Optional[Path], typer.Option("--csv", help="Also write the table (n, total_n, "
+                       "criterion, detections, simulations, probability, standard_error, low, high) "
+                       "to this CSV file.")] = None,
+        as_json: Annotated[bool, typer.Option("--json", help="Print one JSON object.")] = False) -> None:
+    """Simulated power of a saved test (``glmeeg.planning.simulated.simulate_power``)."""
     import json
-    import os
 
     from ..errors import GlmeegError
     from ..inference.corrections import PERMUTATION_METHODS, correction_from_name
     from ..results import load_result
 
-    if (from_result / "run.json").is_file() and not (from_result / "result.npz").is_file():
-        tests = sorted(p.name for p in from_result.iterdir() if (p / "result.npz").is_file())
-        example = f", e.g. {from_result / tests[0]}" if tests else ""
-        raise GlmeegError(f"--from: {from_result} is a run folder; give one test's folder{example}")
-    result = load_result(from_result)
+    if (test / "run.json").is_file() and not (test / "result.npz").is_file():
+        tests = sorted(p.name for p in test.iterdir() if (p / "result.npz").is_file())
+        example = f", e.g. {test / tests[0]}" if tests else ""
+        raise GlmeegError(f"TEST: {test} is a run folder; give one test's folder{example}")
+    result = load_result(test)
     if n is None:
         raise GlmeegError("--n: give the sample sizes to simulate, e.g. --n 16,24,32")
     sizes = _parse_curve(n, "--n")
@@ -553,32 +523,18 @@ def _simulated_power(from_result: Path, *, n: str | None, alpha, simulations, co
 
         table = read_neighbour_table(neighbours, label=str(neighbours))
         graph = neighbours_from_table(result.axes.channels, table, label=str(neighbours))
-    if csv is not None:
-        # Checked before simulating: a wrong --csv should not cost minutes.
-        from ..results.ownership import check_replaceable
-
-        check_replaceable(csv, kind="table", label="--csv")
-        parent = csv.absolute().parent
-        if csv.is_dir():
-            raise GlmeegError(f"--csv: {csv} is a folder; expected a file name")
-        if not parent.is_dir():
-            raise GlmeegError(f"--csv: {csv} cannot be written, folder {parent} does not exist")
-        if not os.access(parent, os.W_OK | os.X_OK):
-            raise GlmeegError(f"--csv: {csv} cannot be written, no permission to write in {parent}")
-    options = {k: v for k, v in (("simulations", simulations), ("permutations", permutations),
-                                 ("effect_scale", effect_scale), ("seed", seed), ("alpha", alpha))
-               if v is not None}
+    if csv is not None:  # checked before simulating: a wrong --csv should not cost minutes
+        _check_new_table(csv, "--csv")
     from ..planning.simulated import simulate_power
 
     try:
-        sim = simulate_power(result, n=sizes, correction=settings, graph=graph,
-                             progress=_simulation_progress(), **options)
+        sim = simulate_power(result, n=sizes, correction=settings, graph=graph, simulations=simulations,
+                             permutations=permutations, alpha=alpha, progress=_simulation_progress(),
+                             **{k: v for k, v in (("effect_scale", effect_scale), ("seed", seed))
+                                if v is not None})
     except GlmeegError as e:
         _close_progress()
-        name, sep, rest = str(e).partition(": ")
-        if sep and name in _SIMULATION_OPTIONS:
-            raise GlmeegError(f"{_SIMULATION_OPTIONS[name]}: {rest}") from None
-        raise
+        raise e.renamed(_SIMULATION_OPTIONS) from None
     _close_progress()
     if csv is not None:
         from ..results import write_table
@@ -589,6 +545,23 @@ def _simulated_power(from_result: Path, *, n: str | None, alpha, simulations, co
     typer.echo(str(sim))
     if csv is not None:
         typer.echo(f"table written to {csv}")
+
+
+def _check_new_table(path: Path, option: str) -> None:
+    """A table can be written at ``path``: never over a user's file, into a folder that exists."""
+    import os
+
+    from ..errors import GlmeegError
+    from ..results.ownership import check_replaceable
+
+    check_replaceable(path, kind="table", label=option)
+    parent = path.absolute().parent
+    if path.is_dir():
+        raise GlmeegError(f"{option}: {path} is a folder; expected a file name")
+    if not parent.is_dir():
+        raise GlmeegError(f"{option}: {path} cannot be written, folder {parent} does not exist")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise GlmeegError(f"{option}: {path} cannot be written, no permission to write in {parent}")
 
 
 def _simulation_progress():

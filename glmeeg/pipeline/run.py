@@ -18,7 +18,8 @@ from .tests import test_group
 
 def run_analysis(design: str | Path | AnalysisPlan, *, progress: Progress | None = None,
                  memory_limit: int | str | None = None, workers: int = 1, scheduler: str | None = None,
-                 client=None, cache: str | Path | FitCache | None = None, refit: bool = False) -> RunResult:
+                 client=None, cache: str | Path | FitCache | None = None, refit: bool = False,
+                 prune: bool = True) -> RunResult:
     """Run every test of a design file.
 
     Parameters
@@ -43,11 +44,14 @@ def run_analysis(design: str | Path | AnalysisPlan, *, progress: Progress | None
     cache : str, Path or FitCache, optional
         Folder of the subject-fit cache (the CLI uses ``OUT/subject-fits``). Finished fits are
         reused, new ones stored as they finish, so an interrupted run resumes. A run that fails
-        on an input error removes the entries it added (one that fails for its workers keeps
-        them). Entries no longer used are removed by :meth:`FitCache.prune` (the CLI calls it
-        once the results are written).
+        on an input error removes the entries it added, and the folders it made for them (one
+        that fails for its workers keeps them). After a run that succeeds, entries of earlier
+        data or subject models are removed (:meth:`FitCache.prune`), unless ``prune=False``.
     refit : bool, default False
         Refit every subject even when the cache holds its fit.
+    prune : bool, default True
+        Remove the cache's entries that this run did not use (keep them when several designs
+        share one cache folder).
 
     Returns
     -------
@@ -76,6 +80,10 @@ def run_analysis(design: str | Path | AnalysisPlan, *, progress: Progress | None
     prov = provenance(design_file=plan.design_file,
                       inputs={**plan.study.input_files, **plan.extra_inputs})
     before = cache.keys() if cache is not None else set()
+    # Folders the cache will make (its own, and the output folder above it), removed again if the
+    # run stops on an input error.
+    made = [] if cache is None else [f for f in (cache.folder, *cache.folder.absolute().parents)
+                                     if not f.exists()]
     try:
         with open_backend(workers=workers, scheduler=scheduler, client=client) as backend:
             est = fit_subjects(plan, backend=backend, cache=cache, refit=refit, hashes=prov.input_sha256,
@@ -87,12 +95,26 @@ def run_analysis(design: str | Path | AnalysisPlan, *, progress: Progress | None
     except GlmeegError:
         if cache is not None:  # an input error leaves the output folder as it was
             cache.rollback(before)
+            _remove_empty(made)
         raise
+    if cache is not None and prune:  # fits of earlier data or subject models are not needed again
+        cache.prune({j.key for j in subject_jobs(plan, hashes=prov.input_sha256)})
     first = plan.study.subject_ids[0]
     return RunResult(design=plan.spec.model_dump(mode="json"), subject_formula=plan.subject_design.formula,
                      subject_columns=plan.subject_design.column_names, subjects=est.summaries,
                      tests=tests, warnings=tuple(plan.warnings) + est.warnings, provenance=prov,
                      example_design_subject=first, example_design=plan.subject_matrices[first].matrix)
+
+
+def _remove_empty(folders: list[Path]) -> None:
+    """Remove these folders, innermost first, while they are empty."""
+    for folder in folders:
+        try:
+            folder.rmdir()
+        except FileNotFoundError:
+            continue  # removed already (the cache removes its own folder when it empties it)
+        except OSError:
+            break
 
 
 def check_assumptions(plan: AnalysisPlan) -> str:

@@ -221,34 +221,34 @@ def _n_min(design: str, groups: int | None) -> float:
 def _check_fraction(name: str, value: float) -> float:
     value = float(value)
     if not (0.0 < value < 1.0):
-        raise GlmeegError(f"{name}: expected a number strictly between 0 and 1, got {value:g}")
+        raise GlmeegError.of(name, f"expected a number strictly between 0 and 1, got {value:g}")
     return value
 
 
 def _check_setting(design: str, alternative: str, df_numerator: int | None,
                    groups: int | None) -> tuple[int | None, int | None]:
     if design not in DESIGNS:
-        raise GlmeegError(f"design: expected one of {', '.join(DESIGNS)}, got {design!r}")
+        raise GlmeegError.of("design", f"expected one of {', '.join(DESIGNS)}, got {design!r}")
     if alternative not in ALTERNATIVES:
-        raise GlmeegError(f"alternative: expected one of {', '.join(ALTERNATIVES)}, got {alternative!r}")
+        raise GlmeegError.of("alternative", f"expected one of {', '.join(ALTERNATIVES)}, got {alternative!r}")
     if design != "f":
         for name, value in (("df_numerator", df_numerator), ("groups", groups)):
             if value is not None:
-                raise GlmeegError(f"{name}: applies to design 'f' only, got {value} with design {design!r}")
+                raise GlmeegError.of(name, f"applies to design 'f' only, got {value} with design {design!r}")
         return None, None
     if alternative != "two-sided":
-        raise GlmeegError(f"alternative: an F test has no direction; expected 'two-sided' (the "
+        raise GlmeegError.of("alternative", f"an F test has no direction; expected 'two-sided' (the "
                           f"default) with design 'f', got {alternative!r}")
     if df_numerator is None:
-        raise GlmeegError("df_numerator: required with design 'f' (k - 1 for a one-way ANOVA of k "
+        raise GlmeegError.of("df_numerator", "required with design 'f' (k - 1 for a one-way ANOVA of k "
                           "groups, the number of tested predictors for a regression)")
     if int(df_numerator) != df_numerator or df_numerator < 1:
-        raise GlmeegError(f"df_numerator: expected a whole number >= 1, got {df_numerator}")
+        raise GlmeegError.of("df_numerator", f"expected a whole number >= 1, got {df_numerator}")
     df_numerator = int(df_numerator)
     if groups is None:
         groups = df_numerator + 1
     if int(groups) != groups or groups < df_numerator + 1:
-        raise GlmeegError(f"groups: expected a whole number >= df_numerator + 1 = {df_numerator + 1} "
+        raise GlmeegError.of("groups", f"expected a whole number >= df_numerator + 1 = {df_numerator + 1} "
                           f"(the parameters of the full model, intercept included), got {groups}")
     return df_numerator, int(groups)
 
@@ -256,7 +256,7 @@ def _check_setting(design: str, alternative: str, df_numerator: int | None,
 def _check_effect_size(value: float) -> float:
     value = float(value)
     if not math.isfinite(value) or value < 0.0:
-        raise GlmeegError(f"effect_size: expected a size >= 0 in the direction of the alternative "
+        raise GlmeegError.of("effect_size", f"expected a size >= 0 in the direction of the alternative "
                           f"(use alternative 'less' for an effect below zero), got {value:g}")
     return value
 
@@ -266,10 +266,10 @@ def _check_n(value: float, design: str, groups: int | None, *, whole: bool, name
     low = _n_min(design, groups)
     per = " per group" if design == "two-sample" else ""
     if whole and (not math.isfinite(value) or value != int(value)):
-        raise GlmeegError(f"{name}: expected a whole number of participants{per}, got {value:g}")
+        raise GlmeegError.of(name, f"expected a whole number of participants{per}, got {value:g}")
     least = math.ceil(low) if whole else low
     if not (math.isfinite(value) and value >= least):
-        raise GlmeegError(f"{name}: expected at least {least:g}{per} so that "
+        raise GlmeegError.of(name, f"expected at least {least:g}{per} so that "
                           f"the test has at least 1 residual df, got {value:g}")
     return value
 
@@ -414,30 +414,30 @@ def solve_power(*, design: Design, effect_size: float | None = None, n: int | No
         alpha, low_end = _solve_increasing(lambda a: pw(effect_size, n, a), power, _ALPHA_RANGE[0],
                                            0.05, _ALPHA_RANGE[1])
         if low_end:
-            raise GlmeegError(f"power: {power:g} is exceeded even at alpha = {_ALPHA_RANGE[0]:g} with "
+            raise GlmeegError.of("power", f"{power:g} is exceeded even at alpha = {_ALPHA_RANGE[0]:g} with "
                               f"effect_size={effect_size:g} and n={n:g}; no alpha to solve")
         if math.isnan(alpha):
-            raise GlmeegError(f"power: {power:g} is not reached at any alpha below 1 with "
+            raise GlmeegError.of("power", f"{power:g} is not reached at any alpha below 1 with "
                               f"effect_size={effect_size:g} and n={n:g}")
     else:
         if power <= alpha:
-            raise GlmeegError(f"power: expected more than alpha = {alpha:g} (a test has power alpha "
+            raise GlmeegError.of("power", f"expected more than alpha = {alpha:g} (a test has power alpha "
                               f"when there is no effect), got {power:g}")
         if solved == "effect_size":
             n_exact = n
             effect_size, _ = _solve_increasing(lambda es: pw(es, n, alpha), power, 0.0, 1.0, _EFFECT_MAX)
             if math.isnan(effect_size):
-                raise GlmeegError(f"power: {power:g} is not reached by any effect_size up to "
+                raise GlmeegError.of("power", f"{power:g} is not reached by any effect_size up to "
                                   f"{_EFFECT_MAX:g} with n={n:g} and alpha={alpha:g}")
         else:
             if effect_size == 0.0:
-                raise GlmeegError("effect_size: expected a size > 0 to solve n (no n detects a zero "
+                raise GlmeegError.of("effect_size", "expected a size > 0 to solve n (no n detects a zero "
                                   "effect with power above alpha), got 0")
             low = _n_min(design, groups)
             n_exact, low_end = _solve_increasing(lambda nn: pw(effect_size, nn, alpha), power, low,
                                                  8.0, _N_MAX)
             if math.isnan(n_exact):
-                raise GlmeegError(f"power: {power:g} is not reached by any n up to {_N_MAX:,.0f} with "
+                raise GlmeegError.of("power", f"{power:g} is not reached by any n up to {_N_MAX:,.0f} with "
                                   f"effect_size={effect_size:g} and alpha={alpha:g}")
             if low_end:
                 notes.append(f"power {power:g} is reached already at the smallest n with 1 residual "
@@ -511,7 +511,7 @@ def power_curve(*, design: Design, effect_size: float, alpha: float = 0.05,
     alpha = _check_fraction("alpha", alpha)
     values = list(n_values)
     if not values:
-        raise GlmeegError("n_values: expected at least one sample size, got none")
+        raise GlmeegError.of("n_values", "expected at least one sample size, got none")
     ns = [_check_n(v, design, groups, whole=False, name="n_values") for v in values]
     power = [_power(design, effect_size, v, alpha, alternative, df_numerator, groups) for v in ns]
     return pd.DataFrame({"n": values, "power": power})

@@ -54,11 +54,11 @@ def whole_number(value, name: str, *, least: int) -> int:
     try:
         v = float(value)
     except (TypeError, ValueError):
-        raise ModelError(f"{name}: expected a whole number, got {value!r}") from None
+        raise ModelError.of(name, f"expected a whole number, got {value!r}") from None
     if not math.isfinite(v) or v != int(v) or isinstance(value, bool):
-        raise ModelError(f"{name}: expected a whole number, got {value!r}")
+        raise ModelError.of(name, f"expected a whole number, got {value!r}")
     if v < least:
-        raise ModelError(f"{name}: expected at least {least}, got {int(v)}")
+        raise ModelError.of(name, f"expected at least {least}, got {int(v)}")
     return int(v)
 
 
@@ -74,25 +74,25 @@ def points_graph_of(graph, result: TestResult) -> tuple[tuple[np.ndarray, np.nda
         try:
             sg = sensor_graph(pd.DataFrame({"name": list(channels)}), sensors_label="the saved result")
         except GlmeegError:
-            raise ModelError("graph: the neighbour graph cannot be rebuilt from the channel names (not all "
+            raise ModelError.of("graph", "the neighbour graph cannot be rebuilt from the channel names (not all "
                              "are 10-10 names); pass the pilot's neighbour table (on the command line "
                              "--neighbours FILE, written by 'glmeeg neighbours DESIGN --out FILE')") from None
         how = (f"{sg.method}, rebuilt from the channel names (the pilot may have used another graph: "
                "pass its neighbour table to use exactly it)")
     elif isinstance(graph, SensorGraph):
         if tuple(graph.channels) != tuple(channels):
-            raise ModelError("graph: the sensor graph's channels differ from the result's "
+            raise ModelError.of("graph", "the sensor graph's channels differ from the result's "
                              f"({len(graph.channels)} vs {len(channels)} channels, or another order)")
         sg, how = graph, graph.method
     else:
         try:
             indptr, indices = (np.ascontiguousarray(a, dtype=np.int64) for a in graph)
         except (TypeError, ValueError):
-            raise ModelError("graph: expected a SensorGraph or the points graph's (indptr, indices) "
+            raise ModelError.of("graph", "expected a SensorGraph or the points graph's (indptr, indices) "
                              f"arrays, got {type(graph).__name__}") from None
         if indptr.ndim != 1 or indptr.size != P + 1 or indices.ndim != 1 or indptr[-1] != indices.size \
                 or (indices.size and (indices.min() < 0 or indices.max() >= P)):
-            raise ModelError(f"graph: (indptr, indices) do not describe a graph of the result's {P} points")
+            raise ModelError.of("graph", f"(indptr, indices) do not describe a graph of the result's {P} points")
         return (indptr, indices), "the points graph given"
     if sg.isolated:
         how += f"; {len(sg.isolated)} sensor(s) without neighbours: {', '.join(sg.isolated)}"
@@ -102,9 +102,9 @@ def points_graph_of(graph, result: TestResult) -> tuple[tuple[np.ndarray, np.nda
 def pilot_arrays(result: TestResult) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """The pilot's subject estimates ``(n, k, P)``, group design and group contrast, checked."""
     if not isinstance(result, TestResult):
-        raise ModelError(f"result: expected a saved test (glmeeg.load_result), got {type(result).__name__}")
+        raise ModelError.of("result", f"expected a saved test (glmeeg.load_result), got {type(result).__name__}")
     if result.subject_estimates is None or result.group_design is None:
-        raise ModelError(f"result: test {result.name!r} holds no subject-level estimates (saved by an "
+        raise ModelError.of("result", f"test {result.name!r} holds no subject-level estimates (saved by an "
                          "earlier glmeeg version); re-run the analysis with this version to simulate from it")
     Y = np.asarray(result.subject_estimates, dtype=np.float64)
     G = np.asarray(result.group_design, dtype=np.float64)
@@ -113,7 +113,7 @@ def pilot_arrays(result: TestResult) -> tuple[np.ndarray, np.ndarray, np.ndarray
     n0 = len(result.subjects)
     k = Y.shape[1] if Y.ndim == 3 else 0
     if Y.shape != (n0, k, P) or G.shape != (n0, len(result.group_columns)) or L.shape[1] != G.shape[1]:
-        raise ModelError(f"result: test {result.name!r} has inconsistent arrays (subject estimates "
+        raise ModelError.of("result", f"test {result.name!r} has inconsistent arrays (subject estimates "
                          f"{Y.shape}, group design {G.shape}, group contrast {L.shape})")
     return Y, G, L
 
@@ -125,9 +125,9 @@ def sample_sizes(n, *, result: TestResult, layout: PilotLayout, k: int, q: int) 
     try:
         values = list(n)
     except TypeError:
-        raise ModelError(f"n: expected sample sizes, got {n!r}") from None
+        raise ModelError.of("n", f"expected sample sizes, got {n!r}") from None
     if not values:
-        raise ModelError("n: expected at least one sample size, got none")
+        raise ModelError.of("n", "expected at least one sample size, got none")
     needed = q + (k if k > 1 else 1)
     per = " per group" if layout.kind == "groups" else ""
     least = max(1, math.ceil(needed / len(layout.members))) if layout.kind == "groups" else needed
@@ -137,11 +137,11 @@ def sample_sizes(n, *, result: TestResult, layout: PilotLayout, k: int, q: int) 
     for v in values:
         v = whole_number(v, "n", least=1)
         if v < least:
-            raise ModelError(f"n: expected at least {least}{per} so that the {result.kind} test has a "
+            raise ModelError.of("n", f"expected at least {least}{per} so that the {result.kind} test has a "
                              f"residual df ({q} group column(s){f', {k} joint contrasts' if k > 1 else ''}), "
                              f"got {v}")
         if v in ns:
-            raise ModelError(f"n: {v} is listed twice")
+            raise ModelError.of("n", f"{v} is listed twice")
         ns.append(v)
     return ns
 
@@ -150,9 +150,9 @@ def positive_number(value, name: str) -> float:
     try:
         value = float(value)
     except (TypeError, ValueError):
-        raise ModelError(f"{name}: expected a number > 0, got {value!r}") from None
+        raise ModelError.of(name, f"expected a number > 0, got {value!r}") from None
     if not (math.isfinite(value) and value > 0):
-        raise ModelError(f"{name}: expected a finite number > 0, got {value:g}")
+        raise ModelError.of(name, f"expected a finite number > 0, got {value:g}")
     return value
 
 
@@ -167,7 +167,7 @@ def target_region(result: TestResult, target) -> tuple[np.ndarray, str]:
     else:
         target_mask = np.asarray(target)
         if target_mask.shape != (P,) or target_mask.dtype != bool:
-            raise ModelError(f"target: expected a boolean array of the result's {P} points, got "
+            raise ModelError.of("target", f"expected a boolean array of the result's {P} points, got "
                              f"{target_mask.dtype} of shape {target_mask.shape}")
         text = f"the {int(target_mask.sum())} points given"
     if result.kind == "t":

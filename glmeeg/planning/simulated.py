@@ -337,14 +337,14 @@ def simulate_power(result: TestResult, *, n: int | Sequence[int], simulations: i
     simulations = whole_number(defaults.SIMULATIONS if simulations is None else simulations,
                                "simulations", least=1)
     if simulations > 1_000_000:
-        raise ModelError(f"simulations: expected at most 1000000, got {simulations}")
+        raise ModelError.of("simulations", f"expected at most 1000000, got {simulations}")
     seed = whole_number(seed, "seed", least=0)
     effect_scale = positive_number(effect_scale, "effect_scale")
     alpha = result.alpha if alpha is None else alpha
     if not (isinstance(alpha, (int, float)) and 0 < alpha < 1):
-        raise ModelError(f"alpha: expected a number strictly between 0 and 1, got {alpha!r}")
+        raise ModelError.of("alpha", f"expected a number strictly between 0 and 1, got {alpha!r}")
     if not (isinstance(confidence_level, (int, float)) and 0 < confidence_level < 1):
-        raise ModelError(f"confidence_level: expected a number strictly between 0 and 1, got {confidence_level!r}")
+        raise ModelError.of("confidence_level", f"expected a number strictly between 0 and 1, got {confidence_level!r}")
     correction, permutations = _correction(result.correction if correction is None else correction,
                                            defaults.SIMULATED_PERMUTATIONS if permutations is None
                                            else permutations, alpha)
@@ -391,13 +391,13 @@ def _correction(correction, permutations, alpha: float):
     """The correction of the simulated studies, with its number of resamplings (None for the
     corrections that do not resample)."""
     if not isinstance(correction, _SETTINGS):
-        raise ModelError("correction: expected a settings object of glmeeg.inference.corrections (e.g. "
+        raise ModelError.of("correction", "expected a settings object of glmeeg.inference.corrections (e.g. "
                          f"ClusterMass()), got {correction!r}")
     if correction.method not in PERMUTATION_METHODS:
         return correction, None
     permutations = whole_number(permutations, "permutations", least=1)
     if 1.0 / (permutations + 1) > alpha:
-        raise ModelError(f"permutations: {permutations} resamplings cannot give p <= alpha {alpha:g}; "
+        raise ModelError.of("permutations", f"{permutations} resamplings cannot give p <= alpha {alpha:g}; "
                          f"use at least {math.ceil(1 / alpha)}")
     return type(correction)(**{**correction.model_dump(), "permutations": permutations}), permutations
 
@@ -430,7 +430,7 @@ class _Study:
             if self.layout.kind == "one-sample" or np.linalg.matrix_rank(Gs) == q:
                 break
         else:
-            raise ModelError(f"n: {n_value}{self.per} gives group designs without full rank in "
+            raise ModelError.of("n", f"{n_value}{self.per} gives group designs without full rank in "
                              f"{_MAX_REDRAWS} draws; use a larger n")
         signs = (1.0 - 2.0 * rng.integers(0, 2, size=total)) if self.flips else np.ones(total)
         study_seed = int(rng.integers(0, 2**63 - 1))
@@ -438,7 +438,7 @@ class _Study:
         try:
             stat, p_corrected = _analyse(Ys, Gs, self.L, seed=study_seed, **self.analyse)
         except ModelError as e:
-            raise ModelError(f"n: {n_value}{self.per}: {e}") from None
+            raise ModelError.of("n", f"{n_value}{self.per}: {e}") from None
         significant = np.nan_to_num(p_corrected, nan=1.0) <= self.alpha
         hit = significant & self.target_mask
         if self.target_sign is not None:
