@@ -21,7 +21,7 @@ import statsmodels.formula.api as smf
 from statsmodels.multivariate.manova import MANOVA
 
 import glmeeg
-from conftest import write_study
+from glmeeg.testing import write_study
 from glmeeg.group_level import hedges_factor
 
 ALTERNATIVES = ("two-sided", "greater", "less")

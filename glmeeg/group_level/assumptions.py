@@ -20,9 +20,17 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.stats
 
-from ..subject_level.ols import fit_ols
+from ..subject_level.ols import fit_ols, unusable_variance
 
-__all__ = ["GroupChecks", "group_checks", "outlying_trials", "robust_z"]
+__all__ = ["GroupChecks", "group_checks", "outlying_trials", "robust_z", "MIN_NORMALITY_SUBJECTS",
+           "normality_not_tested"]
+
+# D'Agostino's skewness test, half of the D'Agostino-Pearson test, needs at least 8 values
+# (scipy.stats.skewtest refuses fewer).
+MIN_NORMALITY_SUBJECTS = 8
+# Why there is no normality test when there are enough subjects.
+NO_RESIDUAL_VARIANCE = ("no point has a usable residual variance (zero, at rounding level or "
+                        "missing everywhere)")
 
 # |robust z| beyond which a subject or trial is called outlying (Leys et al. 2013 suggest 2.5-3.5;
 # 3.5 is the conservative end: common practice).
@@ -73,21 +81,40 @@ def group_checks(estimates: np.ndarray, design: np.ndarray, subjects: tuple[str,
     -----
     A subject's outlyingness is the median over points of its |robust z| among subjects; it is
     outlying when that is itself a robust-z outlier (|z| > 3.5) among the subjects.
+
+    Points whose residual variance holds no digit of the data (zero, at rounding level, or not
+    finite: the group test's rule, :func:`glmeeg.subject_level.unusable_variance`) have no
+    residual shape to check: their skewness, kurtosis and normality p are NaN, and they take no
+    part in the share of rejections or the subjects' outlyingness. When no point is left, the
+    notes say so (the normality test was not run for that reason, not for the number of
+    subjects).
     """
     Y = np.asarray(estimates, dtype=np.float64)
     fit = fit_ols(design, Y)
     resid = Y - design @ fit.betas
     skew = scipy.stats.skew(resid, axis=0, bias=False)
     kurt = scipy.stats.kurtosis(resid, axis=0, bias=False)
+    with np.errstate(invalid="ignore", over="ignore"):
+        unusable = unusable_variance(fit.residual_variance * fit.df_resid,
+                                     np.einsum("np,np->p", Y, Y), Y.shape[0])
     notes = []
-    if Y.shape[0] >= 8:
+    if Y.shape[0] >= MIN_NORMALITY_SUBJECTS:
         p = scipy.stats.normaltest(resid, axis=0).pvalue
+        if unusable.any():
+            skew, kurt, p = (np.where(unusable, np.nan, x) for x in (skew, kurt, p))
         share = float(np.mean(p[np.isfinite(p)] < alpha)) if np.isfinite(p).any() else float("nan")
+        if unusable.all():
+            notes.append(NO_RESIDUAL_VARIANCE + ": no normality test")
     else:
+        if unusable.any():
+            skew, kurt = (np.where(unusable, np.nan, x) for x in (skew, kurt))
         p = np.full(Y.shape[1], np.nan)
         share = float("nan")
-        notes.append("fewer than 8 subjects: no normality test")
-    score = np.median(np.abs(robust_z(resid, axis=0)), axis=1)
+        notes.append(f"fewer than {MIN_NORMALITY_SUBJECTS} subjects: no normality test")
+    # Residuals of rounding size are noise, not the subjects' data: left out of the scores.
+    kept = resid if not unusable.any() else resid[:, ~unusable]
+    score = (np.median(np.abs(robust_z(kept, axis=0)), axis=1) if kept.shape[1]
+             else np.zeros(Y.shape[0]))
     flagged = np.abs(robust_z(score[:, None], axis=0)[:, 0]) > OUTLIER_Z
     outlying = tuple(np.asarray(subjects)[flagged & (score > np.median(score))])
     if np.isfinite(share) and share > 2 * alpha:
@@ -99,6 +126,14 @@ def group_checks(estimates: np.ndarray, design: np.ndarray, subjects: tuple[str,
                      "group test limits their influence")
     return GroupChecks(skewness=skew, excess_kurtosis=kurt, normality_p=p, share_rejected=share,
                        subject_outlyingness=score, outlying_subjects=outlying, notes=tuple(notes))
+
+
+def normality_not_tested(n_subjects: int) -> str:
+    """Why the residual normality test of ``n_subjects`` subjects gave no share of rejections:
+    too few subjects, or (with enough of them) no point with a usable residual variance."""
+    if n_subjects < MIN_NORMALITY_SUBJECTS:
+        return f"fewer than {MIN_NORMALITY_SUBJECTS} subjects"
+    return NO_RESIDUAL_VARIANCE
 
 
 def outlying_trials(X: np.ndarray, Y: np.ndarray, *, n_channels: int = 1) -> np.ndarray:

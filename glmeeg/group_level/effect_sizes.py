@@ -5,7 +5,12 @@ by inverting the noncentral t CDF at the observed t: the lower limit ``δ_L`` so
 ``P(T ≤ t | δ_L) = 1 − α/2`` and the upper limit ``δ_U`` solves ``P(T ≤ t | δ_U) = α/2``. A
 standardized contrast ``d = t·√(c V cᵀ)`` has the interval ``δ·√(c V cᵀ)`` (for a one-sample
 design ``√(1/n)``, giving the interval of Cohen's dz). For F the same inversion on the noncentral
-F gives an interval of ``λ``, mapped to partial eta squared by ``λ / (λ + df₁ + df₂ + 1)``. The
+F gives an interval of ``λ``, mapped to partial eta squared by ``λ / (λ + df₁ + df₂ + 1)``: the
+population partial eta squared ``f² / (1 + f²)`` with ``λ = f² N`` and ``N = df₁ + df₂ + 1``, the
+total sample size of a one-way layout ([2]_; Smithson 2003, *Confidence Intervals*, Sage; both
+from memory). The point estimate :func:`glmeeg.group_test` reports is the sample partial eta
+squared ``F df₁ / (F df₁ + df₂)``, i.e. ``λ̂ / (λ̂ + df₂)`` with ``λ̂ = F df₁``: a different
+mapping, so the point estimate is not the image of a point of the λ interval. The
 inversions run on every point at once by bisection, so no Python loop over points.
 
 References

@@ -20,7 +20,7 @@ import scipy.stats
 
 from .effect_sizes import noncentrality_interval_f, noncentrality_interval_t
 from ..errors import ModelError
-from ..subject_level.ols import fit_ols, unusable_variance
+from ..subject_level.ols import fit_ols, require_full_rank, unusable_variance
 
 __all__ = ["GroupStatistics", "group_arrays", "group_test", "group_test_in_chunks", "p_values",
            "unusable_variance",
@@ -53,7 +53,10 @@ class GroupStatistics:
     effect_size_name, effect_size_corrected_name : str
     effect_size_low, effect_size_high : numpy.ndarray
         Limits of the ``confidence_level`` interval of ``effect_size`` from the noncentral t
-        (d) or F (partial eta squared) distribution.
+        (d) or F (partial eta squared) distribution. For F the limits map the noncentrality
+        ``λ`` by ``λ / (λ + df1 + df2 + 1)`` (an interval of the population partial eta
+        squared), not by the point estimate's ``λ̂ / (λ̂ + df2)`` with ``λ̂ = F df1``; see
+        :func:`group_test`, Notes.
     confidence_level : float
     """
 
@@ -89,26 +92,42 @@ def hedges_factor(df: float) -> float:
 
 def p_values(statistic: np.ndarray, kind: str, df: tuple[float, float], *,
              alternative: Alternative = "two-sided") -> np.ndarray:
-    """Parametric p-values of t (with ``alternative``) or F (upper tail) statistics."""
+    """Parametric p-values of t (with ``alternative``) or F (upper tail) statistics.
+
+    A statistic that is not finite (NaN, or ±inf from a zero variance) has no p-value (NaN):
+    such a point is left out of every correction's family (:func:`glmeeg.inference.adjust_p`
+    leaves out NaN entries), as the resampling corrections leave it out of every resampled map.
+    """
     with np.errstate(invalid="ignore"):
         if kind == "F":
-            return scipy.stats.f.sf(statistic, df[0], df[1])
-        t = scipy.stats.t
-        if alternative == "two-sided":
-            return np.minimum(1.0, 2.0 * t.sf(np.abs(statistic), df[1]))
-        if alternative == "greater":
-            return t.sf(statistic, df[1])
-        return t.cdf(statistic, df[1])
+            p = scipy.stats.f.sf(statistic, df[0], df[1])
+        else:
+            t = scipy.stats.t
+            if alternative == "two-sided":
+                p = np.minimum(1.0, 2.0 * t.sf(np.abs(statistic), df[1]))
+            elif alternative == "greater":
+                p = t.sf(statistic, df[1])
+            else:
+                p = t.cdf(statistic, df[1])
+    infinite = np.isinf(statistic)
+    if np.any(infinite):  # the usual maps have none: their p-values are returned untouched
+        p = np.where(infinite, np.nan, p)
+    return p
 
 
-def group_arrays(estimates, design, contrast) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def group_arrays(estimates, design, contrast, *,
+                 column_names=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Validated float64 arrays of a group test: ``Y`` (n, k, P), ``G`` (n, q), ``L`` (m, q).
+
+    ``column_names`` (optional) name the group design's columns in the message of a
+    rank-deficient design; default: their indices.
 
     Raises
     ------
     ModelError
-        Mismatched shapes, no residual df, or several subject contrasts with several group
-        contrasts.
+        Mismatched shapes, no residual df, a group design with NaN or infinite values or not of
+        full column rank (naming the columns of the dependence), or several subject contrasts
+        with several group contrasts.
     """
     Y = np.asarray(estimates, dtype=np.float64)
     if Y.ndim == 2:
@@ -123,6 +142,8 @@ def group_arrays(estimates, design, contrast) -> tuple[np.ndarray, np.ndarray, n
         raise ModelError(f"group contrast has {L.shape[1]} weights for {q} group design columns")
     if n - q < 1:
         raise ModelError(f"{n} subjects for {q} group design columns: at least {q + 1} are needed")
+    # A rank-deficient design has no unique betas; its t and F would be on the wrong df.
+    require_full_rank(G, column_names=column_names, what="group design")
     if k > 1 and m > 1:
         raise ModelError("a joint test over several subject contrasts takes one group contrast; "
                          f"got {m} group contrasts")
@@ -130,7 +151,8 @@ def group_arrays(estimates, design, contrast) -> tuple[np.ndarray, np.ndarray, n
 
 
 def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, *,
-               alternative: Alternative = "two-sided", confidence_level: float = 0.95) -> GroupStatistics:
+               alternative: Alternative = "two-sided", confidence_level: float = 0.95,
+               column_names=None) -> GroupStatistics:
     """Test a group contrast of subjects' contrast estimates at every point.
 
     Parameters
@@ -146,6 +168,9 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
         Direction of a t test; F tests are always upper-tailed and need "two-sided".
     confidence_level : float, default 0.95
         Level of the effect-size intervals (two-sided, from the noncentral t or F).
+    column_names : sequence of str, optional
+        Names of the group design's columns, for the message of a rank-deficient design
+        (default: their indices).
 
     Returns
     -------
@@ -155,7 +180,8 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
     ------
     ModelError
         Too few subjects for the design (no residual df, or fewer than needed for the joint
-        test), both ``k > 1`` and ``m > 1``, or ``alternative`` not two-sided for an F test.
+        test), a design not of full column rank (naming the columns of the dependence), both
+        ``k > 1`` and ``m > 1``, or ``alternative`` not two-sided for an F test.
 
     Notes
     -----
@@ -170,13 +196,26 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
       covariance matrix on ``ν = n - q`` df; ``F = (ν - k + 1) / (k ν) T²`` on
       ``(k, ν - k + 1)`` df [1]_.
 
-    Effect-size intervals invert the noncentral t (for d) or F (for partial eta squared,
-    ``λ / (λ + ν₁ + ν₂ + 1)``) distribution at the observed statistic [5]_.
+    Effect-size intervals invert the noncentral t (for d) or F (for partial eta squared)
+    distribution at the observed statistic [5]_.
 
     Effect sizes: for t, ``d = c B / s`` (with an intercept-only design and ``c = 1`` this is
     Cohen's dz; with two groups and ``c`` their difference, d with the pooled SD [2]_) and
-    Hedges' ``g = J(ν) d`` [3]_; for F, partial eta squared ``F m / (F m + ν₂)`` and Kelley's
-    partial epsilon squared ``(F - 1) m / (F m + ν₂)`` [4]_ (may be negative).
+    Hedges' ``g = J(ν) d`` [3]_; for F on ``(ν₁, ν₂)`` df, the sample partial eta squared
+    ``F ν₁ / (F ν₁ + ν₂)`` and Kelley's partial epsilon squared ``(F - 1) ν₁ / (F ν₁ + ν₂)``
+    [4]_ (may be negative); for the F of ``m`` group contrasts these are
+    ``SS_effect / (SS_effect + SS_error)`` and ``(SS_effect - ν₁ MS_error) / (SS_effect +
+    SS_error)`` in the sums of squares of the ANOVA table.
+
+    Convention of the partial eta squared interval: the limits ``λ_L, λ_U`` of the noncentrality
+    are mapped by ``λ / (λ + ν₁ + ν₂ + 1)``, the population partial eta squared
+    ``η²_p = f² / (1 + f²)`` with ``λ = f² N`` and ``N = ν₁ + ν₂ + 1`` (the total sample size of
+    a one-way layout) [5]_ [6]_ (from memory). The point estimate is the sample value, which is
+    ``λ̂ / (λ̂ + ν₂)`` with ``λ̂ = F ν₁``: the two mappings differ (by ``ν₁ + 1`` in the
+    denominator), so the point estimate is not the image of a point of the λ interval, and it
+    can lie above the upper limit when ``ν₁`` is large against ``ν₂`` (``ν₁ = 10``, ``ν₂ = 3``,
+    ``F = 1``: 0.77 against an upper limit of 0.67 at 95 %). Both follow their sources; the
+    numbers are kept as they are.
 
     References
     ----------
@@ -190,12 +229,14 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
     .. [5] Steiger, J. H. (2004). Beyond the F test: effect size confidence intervals and tests
        of close fit in the analysis of variance and contrast analysis. Psychological Methods,
        9(2), 164-182.
+    .. [6] Smithson, M. (2003). Confidence Intervals. Sage (Quantitative Applications in the
+       Social Sciences, 140).
     """
     if not 0 < confidence_level < 1:
         raise ModelError(f"confidence_level must be between 0 and 1; got {confidence_level!r}")
     if alternative not in ALTERNATIVES:
         raise ModelError(f"alternative must be one of {', '.join(ALTERNATIVES)}; got {alternative!r}")
-    Y, G, L = group_arrays(estimates, design, contrast)
+    Y, G, L = group_arrays(estimates, design, contrast, column_names=column_names)
     n, k, P = Y.shape
     q = G.shape[1]
     m = L.shape[0]
@@ -266,13 +307,13 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
 
 def group_test_in_chunks(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, *,
                          memory_limit: int, alternative: Alternative = "two-sided",
-                         confidence_level: float = 0.95) -> GroupStatistics:
+                         confidence_level: float = 0.95, column_names=None) -> GroupStatistics:
     """:func:`group_test` over chunks of points sized from a memory budget.
 
     Every statistic is computed point by point, so the chunks' results are simply put side by
     side. Chunks hold at least 1,024 points; below the budget's size the map is one chunk.
     """
-    Y, G, L = group_arrays(estimates, design, contrast)
+    Y, G, L = group_arrays(estimates, design, contrast, column_names=column_names)
     n, k, P = Y.shape
     per_point = 8 * n * k * 8  # the data, residuals and their products in group_test (about)
     step = max(1024, int(memory_limit) // per_point)

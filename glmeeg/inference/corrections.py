@@ -6,8 +6,14 @@ parametric rules adjust p-values (:func:`adjust_p`); the permutation-based rules
 statistic, cluster mass, TFCE) carry their settings here and are computed by
 :mod:`glmeeg.inference.permutation`.
 
-Points whose p-value is not finite (a statistic that could not be computed, e.g. zero variance)
-are left out of the family and keep a NaN corrected p; the run reports how many there are.
+Points without a statistic are left out of the family under every correction: the group tests
+give no statistic (NaN) where the variance holds no digit of the data (zero, underflowed, at
+rounding level: :func:`glmeeg.subject_level.unusable_variance`) or the data are missing, and
+:func:`glmeeg.group_level.p_values` gives no p-value (NaN) for a statistic of ±inf. The
+parametric adjustments leave NaN p-values out (they are not counted in Bonferroni's, Holm's or
+Benjamini-Hochberg's m) and keep them NaN; the resampling corrections set those points to NaN
+in every resampled map, so they enter no maximum, cluster or TFCE value, and give them a NaN
+corrected p. Such points are never significant; the run reports how many there are.
 """
 
 from __future__ import annotations
@@ -194,7 +200,8 @@ def adjust_p(p: np.ndarray, correction: Correction) -> np.ndarray:
     Parameters
     ----------
     p : numpy.ndarray
-        p-values at every point (any shape). NaN entries are left out of the family.
+        p-values at every point (any shape). Entries that are not finite (NaN: a point without
+        a statistic) are left out of the family: they are not counted in ``m`` and stay NaN.
     correction : NoCorrection, Bonferroni, Holm or FalseDiscoveryRate
 
     Returns

@@ -417,7 +417,7 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
                      graph: tuple[np.ndarray, np.ndarray] | None = None,
                      method: Literal["glm", "trimmed", "welch"] = "glm", trim: float = 0.2,
                      memory_limit: int = 512 * 2**20, backend=None, progress=None,
-                     task: str = "resamplings") -> PermutationResult:
+                     task: str = "resamplings", column_names=None) -> PermutationResult:
     """Family-wise corrected p-values at every point by sign-flipping or permutation.
 
     Parameters
@@ -462,6 +462,9 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
         ``progress(task, done, total)`` as resamplings finish.
     task : str, default "resamplings"
         Name of the work in progress reports and error messages.
+    column_names : sequence of str, optional
+        Names of the group design's columns, for the message of a rank-deficient design
+        (default: their indices).
 
     Returns
     -------
@@ -470,8 +473,9 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
     Raises
     ------
     ModelError
-        A requested scheme that cannot test the contrast, a missing graph, or a design that
-        the robust method does not support.
+        A group design not of full column rank (naming the columns of the dependence), a
+        requested scheme that cannot test the contrast, a missing graph, or a design that the
+        robust method does not support.
 
     Notes
     -----
@@ -488,7 +492,7 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
     .. [1] Janssen, A. (1997). Studentized permutation tests for non-i.i.d. hypotheses and the
        generalized Behrens-Fisher problem. Statistics & Probability Letters, 36(1), 9-21.
     """
-    Y, G, L = group_arrays(estimates, design, contrast)
+    Y, G, L = group_arrays(estimates, design, contrast, column_names=column_names)
     n, k, P = Y.shape
     if correction.method in ("cluster", "tfce") and graph is None:
         raise ModelError(f"correction '{correction.method}' needs the neighbour graph of the points")

@@ -18,7 +18,8 @@ class _SummaryPart(BaseModel):
 
 
 class SummaryPeak(_SummaryPart):
-    """The point of the largest statistic (|t| for t tests) among points with a finite p."""
+    """The point of the largest statistic (|t| for t tests) among points with a finite
+    statistic and p."""
 
     channel: str
     frequency: float | None = Field(None, description="Hz; time-frequency results only")
@@ -47,7 +48,7 @@ class SummaryFindings(_SummaryPart):
     n_points: int = Field(ge=1)
     n_significant: int = Field(ge=0)
     n_nonfinite: int = Field(ge=0, description="points where the statistic is not finite")
-    peak: SummaryPeak | None = Field(None, description="absent when no point has a finite p")
+    peak: SummaryPeak | None = Field(None, description="absent when no point has a finite statistic and p")
     channels: list[SummaryChannel]
     clusters: list[Cluster] = Field(description="significant clusters or regions only")
 
@@ -112,14 +113,14 @@ def findings(result: TestResult) -> dict:
     sig = result.significant.astype(bool)
     out: dict[str, Any] = {"n_points": result.axes.n_points, "n_significant": int(sig.sum()),
                            "n_nonfinite": result.n_nonfinite}
-    finite = np.isfinite(result.p)
+    # A point without a finite statistic and p (zero variance, a variance at rounding level,
+    # missing data; a statistic of ±inf in results saved by earlier versions) has no result,
+    # so it is never the peak.
+    finite = np.isfinite(result.p) & np.isfinite(result.statistic)
     if finite.any():
         labels = result.axes.point_labels()
-        i = int(np.nanargmin(np.where(finite, result.p, np.nan)))
-        if result.kind == "t" and np.isfinite(result.statistic).any():
-            i = int(np.nanargmax(np.abs(np.where(finite, result.statistic, np.nan))))
-        elif np.isfinite(result.statistic).any():
-            i = int(np.nanargmax(np.where(finite, result.statistic, np.nan)))
+        kept = np.where(finite, result.statistic, np.nan)
+        i = int(np.nanargmax(np.abs(kept) if result.kind == "t" else kept))
         out["peak"] = {**{k: _plain(v) for k, v in labels.iloc[i].items()},
                        "statistic": float(result.statistic[i]), "p": float(result.p[i]),
                        "p_corrected": float(result.p_corrected[i]),

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING
 
+from ..group_level.assumptions import normality_not_tested
 from ..group_level.effect_sizes import size_label
 from .findings import CLUSTER_CAUTION
 
@@ -23,7 +24,7 @@ CAUTION = ("Significant points are where the test rejects the null hypothesis un
 def describe(result: TestResult) -> str:
     f = result.findings()
     df = f"t({result.df[1]:g})" if result.kind == "t" else f"F({result.df[0]:g}, {result.df[1]:g})"
-    method = {"trimmed": f", {100 * (0.2 if result.spec.trim is None else result.spec.trim):g} % trimmed means",
+    method = {"trimmed": f", {100 * result.spec.trim_used:g} % trimmed means",
               "welch": ", Welch's unequal variances"}.get(result.spec.group_method, "")
     lines = [f"test {result.name}: {df}{method}, {result.n_subjects} subjects, {result.correction.describe()}, "
              f"alpha {result.alpha:g}, {result.alternative}",
@@ -69,12 +70,14 @@ def describe(result: TestResult) -> str:
     if f["n_nonfinite"]:
         lines.append(f"  warning: the statistic is not finite at {f['n_nonfinite']} points "
                      "(zero variance, a variance at rounding level or underflowed, or missing "
-                     "data); they are left out of the correction")
+                     "data); they have no p-value, are left out of the correction's family and "
+                     "are never significant")
     rc = result.residual_checks
     if rc is not None:
-        share = ("not tested (fewer than 8 subjects)" if rc.share_rejected is None else
-                 f"{100 * rc.share_rejected:.1f} % of points (about {100 * rc.alpha:g} % by chance)")
-        lines.append(f"  residual checks: normality ({rc.normality_test}) rejected at {share}; "
+        outcome = (f"not tested: {normality_not_tested(result.n_subjects)}" if rc.share_rejected is None
+                   else f"rejected at {100 * rc.share_rejected:.1f} % of points (about "
+                        f"{100 * rc.alpha:g} % by chance)")
+        lines.append(f"  residual checks: normality ({rc.normality_test}) {outcome}; "
                      f"median |skewness| {rc.median_abs_skewness:.2f}, median excess kurtosis "
                      f"{rc.median_excess_kurtosis:.2f}"
                      + (f"; outlying subjects {', '.join(rc.outlying_subjects)}" if rc.outlying_subjects else ""))

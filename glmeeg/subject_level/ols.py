@@ -21,7 +21,8 @@ import scipy.linalg
 
 from ..errors import ModelError
 
-__all__ = ["OLSFit", "fit_ols", "small_product", "unusable_variance", "BLOCK_POINTS"]
+__all__ = ["OLSFit", "fit_ols", "small_product", "unusable_variance", "dependent_columns",
+           "require_full_rank", "BLOCK_POINTS"]
 
 # Points per block of work for a thread: the block's float64 accumulators (columns + 2 rows of
 # BLOCK_POINTS values) stay in L1/L2 while the trials stream past.
@@ -29,6 +30,10 @@ BLOCK_POINTS = 512
 # Where ||y||^2 - ||Q^T y||^2 keeps less than this share of ||y||^2, residuals are formed
 # explicitly (the difference would lose more than three of sixteen digits).
 _CANCELLATION = 1e-3
+# A column takes part in a linear dependence when its weight in a null vector of the design
+# (columns scaled to unit length) is above this share of the largest weight: far above the
+# ~1e-15 that rounding leaves in the other weights of an exact dependence.
+_DEPENDENCE_WEIGHT = 1e-8
 
 
 def unusable_variance(rss: np.ndarray, total: np.ndarray, n: int) -> np.ndarray:
@@ -124,7 +129,85 @@ def _conditioning(X: np.ndarray) -> np.ndarray:
     return M / norms
 
 
-def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS) -> OLSFit:
+def dependent_columns(X: np.ndarray, M: np.ndarray | None = None) -> tuple[int, tuple[int, ...]]:
+    """Numerical rank of a design and the columns that take part in its linear dependences.
+
+    The rank rule of :func:`fit_ols`, :func:`glmeeg.subject_level.fit_robust` and the group
+    level: :func:`numpy.linalg.matrix_rank` of the conditioned design ``W = X M`` (columns
+    centred on a constant column and scaled to unit length, :func:`_conditioning`; ``M``
+    defaults to it), i.e. the number of singular values of ``W`` above
+    ``s_max · max(rows, columns) · ε``. The null vectors of ``W`` are mapped back to the columns
+    of ``X`` (scaled to unit length); a column is involved when its weight in one of them is
+    above ``1e-8`` of that vector's largest weight.
+
+    Returns
+    -------
+    rank : int
+    columns : tuple of int
+        Indices (from 0) of the columns involved; empty when ``X`` has full column rank.
+    """
+    X = np.asarray(X, dtype=np.float64)
+    p = X.shape[1]
+    M = _conditioning(X) if M is None else M
+    W = X @ M
+    # vt: (p, p) whichever the shape; the reduced form spares an (n, n) factor of tall designs
+    _, s, vt = np.linalg.svd(W, full_matrices=W.shape[0] < p)
+    tol = (s.max() if s.size else 0.0) * max(W.shape) * np.finfo(np.float64).eps
+    rank = int((s > tol).sum())
+    if rank == p:
+        return rank, ()
+    norms = np.linalg.norm(X, axis=0)
+    norms[norms == 0] = 1.0
+    null = norms[:, None] * (M @ vt[rank:].T)          # (p, p - rank), unit-length columns of X
+    null /= np.abs(null).max(axis=0, keepdims=True)
+    involved = np.flatnonzero((np.abs(null) > _DEPENDENCE_WEIGHT).any(axis=1))
+    return rank, tuple(int(j) for j in involved)
+
+
+def require_full_rank(X: np.ndarray, M: np.ndarray | None = None, *, column_names=None,
+                      what: str = "design", on: str = "") -> None:
+    """Refuse a design that is not of full column rank (:func:`dependent_columns`' rule).
+
+    Parameters
+    ----------
+    X : numpy.ndarray
+        ``(rows, columns)`` design.
+    M : numpy.ndarray, optional
+        Its conditioning matrix (default :func:`_conditioning` of ``X``).
+    column_names : sequence of str, optional
+        Names of the columns for the message; default: their indices, counted from 0.
+    what : str, default "design"
+        What the matrix is, for the message (``"group design"``).
+    on : str, default ""
+        Where the rank was taken, for the message (``" on the trials with positive weight"``).
+
+    Raises
+    ------
+    ModelError
+        One line: the rank, the columns of the dependence, and what to do. Also when ``X``
+        holds NaN or infinite values, or ``column_names`` does not name every column.
+    """
+    X = np.asarray(X, dtype=np.float64)
+    p = X.shape[1]
+    if column_names is not None and len(column_names) != p:
+        raise ModelError(f"{len(column_names)} column names for the {p} columns of the {what}")
+    label = ((lambda j: repr(str(column_names[j]))) if column_names is not None else str)
+    bad = np.flatnonzero(~np.isfinite(X).all(axis=0))
+    if bad.size:
+        raise ModelError(f"{what} column(s) {', '.join(label(j) for j in bad)} hold NaN or "
+                         "infinite values")
+    rank, involved = dependent_columns(X, M)
+    if involved:
+        which = ", ".join(label(j) for j in involved)
+        counted = "" if column_names is not None else " (counted from 0)"
+        dependence = (f"column {which}{counted} is all zero" if len(involved) == 1 else
+                      f"columns {which}{counted} are linearly dependent")
+        raise ModelError(f"{what} of {p} columns is rank deficient{on} (rank {rank}): "
+                         f"{dependence}; drop or merge columns")
+
+
+def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS,
+            column_names=None) -> OLSFit:
     """Fit ``Y = X @ B + E`` by least squares at every column (point) of ``Y``.
 
     Parameters
@@ -137,6 +220,9 @@ def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS) -
     block_points : int, default 512
         Points per block of work shared out to the threads; changes speed only, never the
         result (bitwise).
+    column_names : sequence of str, optional
+        Names of the design's columns, for the message of a rank-deficient design (default:
+        their indices).
 
     Returns
     -------
@@ -145,7 +231,9 @@ def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS) -
     Raises
     ------
     ModelError
-        Fewer rows than columns plus one, or mismatched shapes.
+        Fewer rows than columns plus one, mismatched shapes, a design with NaN or infinite
+        values, or a design not of full column rank (:func:`require_full_rank`, naming the
+        columns of the dependence).
 
     Notes
     -----
@@ -173,6 +261,7 @@ def fit_ols(X: np.ndarray, Y: np.ndarray, *, block_points: int = BLOCK_POINTS) -
     from .kernels import project_columns, residual_sum_squares
 
     M = _conditioning(X)
+    require_full_rank(X, M, column_names=column_names)
     Q, R = np.linalg.qr(X @ M)
     shift = _constant_column(X) is not None
     proj, sq = project_columns(Y, np.ascontiguousarray(Q.T), shift, max(1, int(block_points)))
