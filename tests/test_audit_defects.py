@@ -240,9 +240,6 @@ def test_a_point_with_an_infinite_statistic_is_never_the_peak(tmp_path):
     assert np.isfinite(peak["statistic"])
 
 
-@pytest.mark.xfail(strict=True, raises=AssertionError,
-                   reason="planning/simulated.py computes its own t without the unusable-variance "
-                          "rule (issue 14): remove this mark with that fix")
 def test_simulated_power_leaves_points_without_a_digit_out_under_every_correction(tmp_path):
     """A pilot point that is an exact function of the group design (all subjects equal up to
     rounding) gives simulated studies whose t there is ~1e10 from rounding residue. Under
@@ -303,3 +300,25 @@ def test_the_residual_checks_text_gives_the_true_cause(tmp_path):
 def test_the_residual_checks_text_with_few_subjects(tmp_path):
     result = _small_run(tmp_path, n_subjects=6)
     assert "normality (D'Agostino-Pearson) not tested: fewer than 8 subjects;" in str(result)
+
+
+def test_trial_weights_that_leave_a_condition_without_weight_are_one_line(tmp_path):
+    """Zero weights on every trial of a condition leave its column without data: refused with
+    the subject and the columns named (before, a LinAlgError escaped from the fit)."""
+    import pandas as pd
+    from typer.testing import CliRunner
+
+    from glmeeg.cli import app
+
+    design = write_study(tmp_path / "study", n_subjects=6, n_trials=15, n_channels=2, n_times=4)
+    trials = pd.read_csv(tmp_path / "study" / "trials.csv")
+    trials["w"] = np.where((trials["subject"] == "s02") & (trials["condition"] == "c"), 0.0, 1.0)
+    trials.to_csv(tmp_path / "study" / "trials.csv", index=False)
+    design.write_text(design.read_text().replace('formula = "condition + intensity"',
+                                                 'formula = "condition + intensity"\ntrial_weights = "w"'))
+    result = CliRunner().invoke(app, ["run", str(design), "--out", str(tmp_path / "out")])
+    assert result.exit_code == 2, result.output
+    line = result.stderr.strip()
+    assert result.stderr.count("\n") == 1 and line.startswith("error: subject s02: design")
+    assert "condition[T.c]" in line and "positive weight in 'w'" in line
+    assert not (tmp_path / "out").exists()

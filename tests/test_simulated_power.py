@@ -354,7 +354,7 @@ def test_cli_bad_input_exits_2_with_one_line(saved, args, fragment):
 def test_statistic_is_group_tests():
     # The simulation's statistic skips group_test's effect-size intervals; the maps must be the
     # same (group_test is checked against statsmodels in test_reference_group_level.py).
-    from glmeeg.planning.simulated import _statistic
+    from glmeeg.group_level.glm import group_statistic as _statistic
 
     rng = np.random.default_rng(3)
     Y = rng.standard_normal((14, 2, 9)) + 0.3

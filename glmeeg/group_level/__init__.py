@@ -5,10 +5,10 @@ Welch), ``effect_sizes`` (standardised effects and their intervals), ``bootstrap
 of the group estimate) and ``assumptions`` (residual checks).
 """
 
-from .glm import (GroupStatistics, group_arrays, group_test, group_test_in_chunks, hedges_factor,
-                  p_values, unusable_variance)
+from .glm import (GroupStatistics, group_arrays, group_statistic, group_test, group_test_in_chunks,
+                  hedges_factor, p_values, unusable_variance)
 from .robust import GROUP_METHODS, group_layout, trimmed_test, welch_test, winsorized_normal_sd
 
-__all__ = ["GroupStatistics", "group_arrays", "group_test", "group_test_in_chunks", "p_values",
+__all__ = ["GroupStatistics", "group_arrays", "group_statistic", "group_test", "group_test_in_chunks", "p_values",
            "unusable_variance", "hedges_factor", "GROUP_METHODS", "group_layout", "trimmed_test",
            "welch_test", "winsorized_normal_sd"]

@@ -22,7 +22,8 @@ from .effect_sizes import noncentrality_interval_f, noncentrality_interval_t
 from ..errors import ModelError
 from ..subject_level.ols import fit_ols, require_full_rank, unusable_variance
 
-__all__ = ["GroupStatistics", "group_arrays", "group_test", "group_test_in_chunks", "p_values",
+__all__ = ["GroupStatistics", "group_arrays", "group_test", "group_test_in_chunks", "group_statistic",
+           "p_values",
            "unusable_variance",
            "hedges_factor"]
 
@@ -325,3 +326,43 @@ def group_test_in_chunks(estimates: np.ndarray, design: np.ndarray, contrast: np
               for f in ("estimate", "standard_error", "statistic", "p", "effect_size",
                         "effect_size_corrected", "effect_size_low", "effect_size_high")}
     return dataclasses.replace(parts[0], **joined)
+
+
+def group_statistic(Y: np.ndarray, G: np.ndarray, L: np.ndarray) -> np.ndarray:
+    """The t, F or Hotelling F map of :func:`group_test`, without its estimates, effect sizes and
+    their intervals (which take most of its time on large maps): the same formulas from a QR of
+    the conditioned design, for many repeated tests (simulated power). Points without a usable
+    variance (:func:`unusable_variance`) are NaN, as in :func:`group_test`; the maps agree with
+    it to rounding (``tests/test_simulated_power.py``).
+
+    ``Y`` is ``(n, k, P)``, ``G`` ``(n, q)``, ``L`` ``(m, q)``, already checked (:func:`group_arrays`).
+    """
+    import scipy.linalg
+
+    from ..subject_level.ols import _conditioning
+
+    n, k, P = Y.shape
+    q, m = G.shape[1], L.shape[0]
+    dfe = n - q
+    M = _conditioning(G)
+    Q, R = np.linalg.qr(G @ M)
+    K = L @ M @ scipy.linalg.solve_triangular(R, np.eye(q))   # L B = K Q' Y
+    U = (Q.T @ Y.reshape(n, k * P)).reshape(q, k, P)
+    E = Y - np.einsum("nq,qkp->nkp", Q, U)
+    KKt = K @ K.T
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        if k == 1:
+            est = K @ U[:, 0]
+            rss = np.einsum("np,np->p", E[:, 0], E[:, 0])
+            bad = unusable_variance(rss, np.einsum("np,np->p", Y[:, 0], Y[:, 0]), n)
+            s2 = np.where(bad, np.nan, rss / dfe)
+            if m == 1:
+                return est[0] / np.sqrt(s2 * KKt[0, 0])
+            return np.einsum("ip,ij,jp->p", est, np.linalg.inv(KKt), est) / (m * s2)
+        a = np.einsum("q,qkp->pk", K[0], U)
+        S = np.einsum("nkp,nlp->pkl", E, E) / dfe
+        bad = unusable_variance(np.einsum("pkk->kp", S) * dfe, np.einsum("nkp,nkp->kp", Y, Y), n).any(axis=0)
+        ok = np.isfinite(S).all(axis=(1, 2)) & (np.linalg.det(S) > 0) & ~bad
+        sol = np.full_like(a, np.nan)
+        sol[ok] = np.linalg.solve(S[ok], a[ok][..., None])[..., 0]
+        return (dfe - k + 1) / (k * dfe) * np.einsum("pk,pk->p", a, sol) / KKt[0, 0]

@@ -211,4 +211,8 @@ def _trial_weights(plan: AnalysisPlan, trials: pd.DataFrame, X: DesignMatrix, su
     if np.count_nonzero(w) <= X.matrix.shape[1]:
         raise StudyError(f"subject {subject}: only {np.count_nonzero(w)} trials have a positive weight "
                          f"in {column!r}; the model has {X.matrix.shape[1]} columns")
+    from ..subject_level.ols import require_full_rank
+
+    require_full_rank(X.matrix[w > 0], column_names=X.column_names, what=f"subject {subject}: design",
+                      on=f" on the trials with positive weight in {column!r}")
     return w

@@ -71,11 +71,12 @@ def _cluster_bootstrap(clusters, labels: np.ndarray, Y: np.ndarray, test: TestPl
 def _residual_checks(Y: np.ndarray, test: TestPlan, notes: list) -> dict:
     """Group-level residual checks of a single-contrast test, as result fields; their
     suggestions are appended to ``notes``."""
-    from ..group_level.assumptions import group_checks
+    from ..group_level.assumptions import NO_RESIDUAL_VARIANCE, group_checks
     from ..results import ResidualChecks
 
     g = group_checks(Y, test.group_matrix.matrix, test.subjects)
-    notes.extend(n for n in g.notes if not n.startswith("fewer than 8"))
+    # The cause of an untested normality is printed with the residual checks; not twice.
+    notes.extend(n for n in g.notes if not n.startswith(("fewer than", NO_RESIDUAL_VARIANCE)))
     with np.errstate(all="ignore"):
         skew = float(np.nanmedian(np.abs(g.skewness))) if np.isfinite(g.skewness).any() else float("nan")
         kurt = float(np.nanmedian(g.excess_kurtosis)) if np.isfinite(g.excess_kurtosis).any() else float("nan")

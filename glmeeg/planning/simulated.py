@@ -461,46 +461,15 @@ def _rates(n_value: int, found: np.ndarray, *, layout: PilotLayout, simulations:
     return out
 
 
-def _statistic(Y: np.ndarray, G: np.ndarray, L: np.ndarray) -> np.ndarray:
-    """The t, F or Hotelling F map of the group GLM: group_test's statistic, without the
-    effect-size intervals that take most of its time on large maps (same formulas, QR)."""
-    import scipy.linalg
-
-    from ..subject_level.ols import _conditioning
-
-    n, k, P = Y.shape
-    q, m = G.shape[1], L.shape[0]
-    dfe = n - q
-    M = _conditioning(G)
-    Q, R = np.linalg.qr(G @ M)
-    K = L @ M @ scipy.linalg.solve_triangular(R, np.eye(q))   # L B = K Q' Y
-    U = (Q.T @ Y.reshape(n, k * P)).reshape(q, k, P)
-    E = Y - np.einsum("nq,qkp->nkp", Q, U)
-    KKt = K @ K.T
-    with np.errstate(divide="ignore", invalid="ignore"):
-        if k == 1:
-            est = K @ U[:, 0]
-            s2 = np.einsum("np,np->p", E[:, 0], E[:, 0]) / dfe
-            if m == 1:
-                return est[0] / np.sqrt(s2 * KKt[0, 0])
-            return np.einsum("ip,ij,jp->p", est, np.linalg.inv(KKt), est) / (m * s2)
-        a = np.einsum("q,qkp->pk", K[0], U)
-        S = np.einsum("nkp,nlp->pkl", E, E) / dfe
-        ok = np.isfinite(S).all(axis=(1, 2)) & (np.linalg.det(S) > 0)
-        sol = np.full_like(a, np.nan)
-        sol[ok] = np.linalg.solve(S[ok], a[ok][..., None])[..., 0]
-        return (dfe - k + 1) / (k * dfe) * np.einsum("pk,pk->p", a, sol) / KKt[0, 0]
-
-
 def _analyse(Y, G, L, *, method, trim, alternative, correction, seed, graph,
              memory_limit) -> tuple[np.ndarray, np.ndarray]:
     """The statistic and corrected p of one simulated study, as the pilot's test computes them."""
-    from ..group_level.glm import p_values
+    from ..group_level.glm import group_statistic, p_values
 
     n, k, _ = Y.shape
     if method == "glm":
         kind, df = _kind_and_df(k, L.shape[0], n, G.shape[1])
-        stat = _statistic(Y, G, L)
+        stat = group_statistic(Y, G, L)
         p = p_values(stat, kind, df, alternative=alternative)
         extra = {}
     else:

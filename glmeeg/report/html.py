@@ -15,6 +15,7 @@ import logging
 
 import numpy as np
 
+from ..group_level.assumptions import normality_not_tested
 from .methods import methods_paragraph
 from ..results import CAUTION, CLINICAL_CAUTION, CLUSTER_CAUTION, RunResult, TestResult
 
@@ -151,7 +152,7 @@ def _test_section(t: TestResult) -> str:
         parts.append("<p>No clusters or regions of significant points.</p>")
     rc = t.residual_checks
     if rc is not None:
-        share = ("not tested (fewer than 8 subjects)" if rc.share_rejected is None
+        share = (f"not tested ({normality_not_tested(t.n_subjects)})" if rc.share_rejected is None
                  else f"{100 * rc.share_rejected:.1f} % of points")
         parts.append(f"<h3>Assumption checks</h3><p>Normality of group-level residuals "
                      f"({_esc(rc.normality_test)}, alpha {rc.alpha:g}) rejected at {share}; median "

@@ -92,7 +92,8 @@ class ResidualChecks(_Frozen):
     alpha: float = 0.05
     share_rejected: float | None = Field(description="share of points where normality is rejected at "
                                          "alpha (uncorrected: about alpha expected by chance); "
-                                         "None with fewer than 8 subjects")
+                                         "None where it is not tested (fewer than 8 subjects, or no point "
+                                         "with a usable residual variance)")
     median_abs_skewness: float
     median_excess_kurtosis: float
     outlying_subjects: tuple[str, ...] = ()

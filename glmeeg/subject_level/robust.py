@@ -28,6 +28,7 @@ import scipy.linalg
 from .. import defaults
 from ..errors import ModelError
 from .irls import compiled_irls
+from .ols import require_full_rank
 
 # The norms and their default tuning constants (glmeeg.defaults.ROBUST_TUNING: 95 % asymptotic
 # efficiency at the normal distribution, Holland & Welsch, 1977).
@@ -369,10 +370,8 @@ def fit_robust(X: np.ndarray, Y: np.ndarray, *, norm: str = "huber", tuning: flo
     au = a[rows]
     root_w = np.sqrt(au)
     M = _conditioning(Xu, au)
+    require_full_rank(root_w[:, None] * Xu, M, on=" on the trials with positive weight")
     Xc = root_w[:, None] * Xu @ M
-    if np.linalg.matrix_rank(Xc) < p:
-        raise ModelError(f"design of {p} columns is rank deficient (on the trials with positive "
-                         "weight); drop or merge columns")
     Q, R = np.linalg.qr(Xc)
     r_inv = scipy.linalg.solve_triangular(R, np.eye(p), check_finite=False)
     ols_map = np.ascontiguousarray(r_inv @ Q.T)  # least-squares start, conditioned coordinates
