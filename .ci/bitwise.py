@@ -263,7 +263,11 @@ def record(out: Path) -> dict:
             for path in sorted(tmp.rglob(table)):
                 digests[str(path.relative_to(tmp))] = _csv_digest(path)
         power = tmp / "power.csv"
-        _glmeeg("power", "--from", str(tmp / "demo" / "results" / "loudness"), "--n", "10,14",
+        # `glmeeg simulate-power TEST` (earlier: `glmeeg power --from TEST`).
+        newer = subprocess.run([sys.executable, "-m", "glmeeg", "simulate-power", "--help"], env=env,
+                               capture_output=True).returncode == 0
+        pilot = str(tmp / "demo" / "results" / "loudness")
+        _glmeeg(*(["simulate-power", pilot] if newer else ["power", "--from", pilot]), "--n", "10,14",
                 "--simulations", "20", "--permutations", "100", "--csv", str(power), env=env)
         digests["simulated-power.csv"] = _csv_digest(power)
         for i, args in enumerate([("--design", "two-sample", "--effect-size", "0.5", "--power", "0.8"),
