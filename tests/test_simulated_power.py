@@ -72,6 +72,7 @@ def exact_t_power(delta: float, df: float, alpha: float = 0.05) -> tuple[float, 
 
 # --------------------------------------------------------------------------- closed forms
 
+@pytest.mark.slow  # 2,000 simulated studies
 def test_one_sample_one_point_matches_the_noncentral_t():
     # A large pilot of independent normal values: resampling its residuals is close to sampling
     # the normal distribution with the pilot's own mean and SD, so the simulated power must be
@@ -94,6 +95,7 @@ def test_one_sample_one_point_matches_the_noncentral_t():
             assert abs(rate.probability - exact) <= 4 * math.sqrt(exact * (1 - exact) / S), (n, criterion)
 
 
+@pytest.mark.slow  # 1,500 simulated studies
 def test_two_groups_one_point_matches_the_noncentral_t():
     # Two groups drawn n per group, each from its own pilot subjects: exact two-sample power at
     # the pilot's d (pooled SD), df 2n - 2, noncentrality d sqrt(n / 2) (Cohen, 1988, ch. 2).
@@ -114,6 +116,7 @@ def test_two_groups_one_point_matches_the_noncentral_t():
     assert abs(rate.probability - exact) <= 4 * math.sqrt(exact * (1 - exact) / S)
 
 
+@pytest.mark.slow  # 400 simulated studies, 99 resamplings each
 def test_null_effect_with_max_correction_detects_at_alpha():
     # A pilot with exactly zero mean at every point: no effect. Sign-flipped resampled noise is
     # symmetric, so the max-statistic test of each simulated study has level alpha: with
@@ -162,6 +165,7 @@ def max_pilot() -> results.TestResult:
                              correction=MaxStatistic(permutations=99))
 
 
+@pytest.mark.slow  # simulated power six times
 def test_seeded_and_independent_of_the_order_of_n(max_pilot):
     a = simulate_power(max_pilot, n=[8, 14], simulations=20, permutations=99, seed=11)
     b = simulate_power(max_pilot, n=[14, 8], simulations=20, permutations=99, seed=11)
@@ -352,9 +356,10 @@ def test_cli_bad_input_exits_2_with_one_line(saved, args, fragment):
 
 
 def test_statistic_is_group_tests():
-    # The simulation's statistic skips group_test's effect-size intervals; the maps must be the
-    # same (group_test is checked against statsmodels in test_reference_group_level.py).
-    from glmeeg.group_level.glm import group_statistic as _statistic
+    # Simulated power asks the group level's one entrance for its maps, without the effect-size
+    # intervals; the statistic and p must be group_test's, bit for bit (group_test is checked
+    # against statsmodels in test_reference_group_level.py).
+    from glmeeg.group_level import group_statistics
 
     rng = np.random.default_rng(3)
     Y = rng.standard_normal((14, 2, 9)) + 0.3
@@ -362,4 +367,6 @@ def test_statistic_is_group_tests():
     for Yc, L in ((Y[:, :1], [[0.0, 1.0, 0.0]]), (Y[:, :1], [[0.0, 1.0, 0.0], [0.0, 0.0, 1.0]]),
                   (Y, [[1.0, 0.0, 0.0]])):
         L = np.array(L)
-        np.testing.assert_allclose(_statistic(Yc, G, L), group_test(Yc, G, L).statistic, rtol=1e-10)
+        fast, full = group_statistics(Yc, G, L, intervals=False), group_test(Yc, G, L)
+        assert fast.statistic.tobytes() == full.statistic.tobytes() and fast.p.tobytes() == full.p.tobytes()
+        assert np.isnan(fast.effect_size_low).all() and np.isfinite(full.effect_size_low).all()

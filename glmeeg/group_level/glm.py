@@ -22,8 +22,7 @@ from .effect_sizes import noncentrality_interval_f, noncentrality_interval_t
 from ..errors import ModelError
 from ..subject_level.ols import fit_ols, require_full_rank, unusable_variance
 
-__all__ = ["GroupStatistics", "group_arrays", "group_test", "group_test_in_chunks", "group_statistic",
-           "p_values",
+__all__ = ["GroupStatistics", "group_arrays", "group_test", "group_test_in_chunks", "p_values",
            "unusable_variance",
            "hedges_factor"]
 
@@ -153,7 +152,7 @@ def group_arrays(estimates, design, contrast, *,
 
 def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, *,
                alternative: Alternative = "two-sided", confidence_level: float = 0.95,
-               column_names=None) -> GroupStatistics:
+               column_names=None, intervals: bool = True) -> GroupStatistics:
     """Test a group contrast of subjects' contrast estimates at every point.
 
     Parameters
@@ -172,6 +171,9 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
     column_names : sequence of str, optional
         Names of the group design's columns, for the message of a rank-deficient design
         (default: their indices).
+    intervals : bool, default True
+        Compute the effect-size intervals (most of the time on large maps); False leaves them
+        NaN (repeated tests of simulated power).
 
     Returns
     -------
@@ -264,7 +266,8 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
             j = hedges_factor(dfe)
             es, es_c = d, j * d
             names = ("dz", "gz") if q == 1 else ("d", "g")
-            lo, hi = noncentrality_interval_t(stat, dfe, confidence=confidence_level)
+            lo, hi = (noncentrality_interval_t(stat, dfe, confidence=confidence_level) if intervals
+                      else (np.full(P, np.nan), np.full(P, np.nan)))
             scale = np.sqrt(c @ V @ c)  # d = t * sqrt(c V c')
             es_lo, es_hi = lo * scale, hi * scale
         else:
@@ -295,7 +298,8 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
             es = stat * df[0] / (stat * df[0] + df[1])
             es_c = (stat - 1) * df[0] / (stat * df[0] + df[1])
             names = ("partial eta squared", "partial epsilon squared")
-            lam_lo, lam_hi = noncentrality_interval_f(stat, df[0], df[1], confidence=confidence_level)
+            lam_lo, lam_hi = (noncentrality_interval_f(stat, df[0], df[1], confidence=confidence_level)
+                              if intervals else (np.full(P, np.nan), np.full(P, np.nan)))
             total = df[0] + df[1] + 1
             es_lo, es_hi = lam_lo / (lam_lo + total), lam_hi / (lam_hi + total)
     p = p_values(stat, "t" if (k == 1 and m == 1) else "F", df, alternative=alternative)
@@ -308,7 +312,8 @@ def group_test(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, 
 
 def group_test_in_chunks(estimates: np.ndarray, design: np.ndarray, contrast: np.ndarray, *,
                          memory_limit: int, alternative: Alternative = "two-sided",
-                         confidence_level: float = 0.95, column_names=None) -> GroupStatistics:
+                         confidence_level: float = 0.95, column_names=None,
+                         intervals: bool = True) -> GroupStatistics:
     """:func:`group_test` over chunks of points sized from a memory budget.
 
     Every statistic is computed point by point, so the chunks' results are simply put side by
@@ -319,50 +324,11 @@ def group_test_in_chunks(estimates: np.ndarray, design: np.ndarray, contrast: np
     per_point = 8 * n * k * 8  # the data, residuals and their products in group_test (about)
     step = max(1024, int(memory_limit) // per_point)
     if step >= P:
-        return group_test(Y, G, L, alternative=alternative, confidence_level=confidence_level)
+        return group_test(Y, G, L, alternative=alternative, confidence_level=confidence_level,
+                          intervals=intervals)
     parts = [group_test(Y[:, :, a:a + step], G, L, alternative=alternative,
-                        confidence_level=confidence_level) for a in range(0, P, step)]
+                        confidence_level=confidence_level, intervals=intervals) for a in range(0, P, step)]
     joined = {f: np.concatenate([getattr(r, f) for r in parts], axis=-1)
               for f in ("estimate", "standard_error", "statistic", "p", "effect_size",
                         "effect_size_corrected", "effect_size_low", "effect_size_high")}
     return dataclasses.replace(parts[0], **joined)
-
-
-def group_statistic(Y: np.ndarray, G: np.ndarray, L: np.ndarray) -> np.ndarray:
-    """The t, F or Hotelling F map of :func:`group_test`, without its estimates, effect sizes and
-    their intervals (which take most of its time on large maps): the same formulas from a QR of
-    the conditioned design, for many repeated tests (simulated power). Points without a usable
-    variance (:func:`unusable_variance`) are NaN, as in :func:`group_test`; the maps agree with
-    it to rounding (``tests/test_simulated_power.py``).
-
-    ``Y`` is ``(n, k, P)``, ``G`` ``(n, q)``, ``L`` ``(m, q)``, already checked (:func:`group_arrays`).
-    """
-    import scipy.linalg
-
-    from ..subject_level.ols import _conditioning
-
-    n, k, P = Y.shape
-    q, m = G.shape[1], L.shape[0]
-    dfe = n - q
-    M = _conditioning(G)
-    Q, R = np.linalg.qr(G @ M)
-    K = L @ M @ scipy.linalg.solve_triangular(R, np.eye(q))   # L B = K Q' Y
-    U = (Q.T @ Y.reshape(n, k * P)).reshape(q, k, P)
-    E = Y - np.einsum("nq,qkp->nkp", Q, U)
-    KKt = K @ K.T
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        if k == 1:
-            est = K @ U[:, 0]
-            rss = np.einsum("np,np->p", E[:, 0], E[:, 0])
-            bad = unusable_variance(rss, np.einsum("np,np->p", Y[:, 0], Y[:, 0]), n)
-            s2 = np.where(bad, np.nan, rss / dfe)
-            if m == 1:
-                return est[0] / np.sqrt(s2 * KKt[0, 0])
-            return np.einsum("ip,ij,jp->p", est, np.linalg.inv(KKt), est) / (m * s2)
-        a = np.einsum("q,qkp->pk", K[0], U)
-        S = np.einsum("nkp,nlp->pkl", E, E) / dfe
-        bad = unusable_variance(np.einsum("pkk->kp", S) * dfe, np.einsum("nkp,nkp->kp", Y, Y), n).any(axis=0)
-        ok = np.isfinite(S).all(axis=(1, 2)) & (np.linalg.det(S) > 0) & ~bad
-        sol = np.full_like(a, np.nan)
-        sol[ok] = np.linalg.solve(S[ok], a[ok][..., None])[..., 0]
-        return (dfe - k + 1) / (k * dfe) * np.einsum("pk,pk->p", a, sol) / KKt[0, 0]

@@ -125,21 +125,12 @@ def test_group(plan: AnalysisPlan, test: TestPlan, estimates: SubjectEstimates, 
 
 def _statistics(Y: np.ndarray, test: TestPlan, memory_limit: int):
     """The group statistic of a test's method at every point."""
-    if test.spec.group_method == "trimmed":
-        from ..group_level.robust import trimmed_test
-        return trimmed_test(Y[:, 0], test.group_matrix.matrix, test.group_contrast.matrix,
-                            trim=test.spec.trim_used,
-                            alternative=test.spec.alternative)
-    if test.spec.group_method == "welch":
-        from ..group_level.robust import welch_test
-        return welch_test(Y[:, 0], test.group_matrix.matrix, test.group_contrast.matrix,
-                          alternative=test.spec.alternative)
-    from ..group_level.glm import group_test_in_chunks
-    return group_test_in_chunks(Y, test.group_matrix.matrix, test.group_contrast.matrix,
-                                memory_limit=memory_limit, alternative=test.spec.alternative,
-                                confidence_level=test.spec.confidence_level)
+    from ..group_level import group_statistics
 
-
+    return group_statistics(Y, test.group_matrix.matrix, test.group_contrast.matrix,
+                            method=test.spec.group_method, trim=test.spec.trim_used,
+                            alternative=test.spec.alternative,
+                            confidence_level=test.spec.confidence_level, memory_limit=memory_limit)
 def _resampled(plan: AnalysisPlan, test: TestPlan, Y: np.ndarray, stats, extra: dict, notes: list, *,
                memory_limit: int, backend, progress):
     """The permutation test of a resampling correction; its maps and facts go into ``extra``,

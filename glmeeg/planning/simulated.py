@@ -192,14 +192,6 @@ class SimulatedPower(_Frozen):
         return "\n".join(lines)
 
 
-def _kind_and_df(k: int, m: int, n: int, q: int) -> tuple[Literal["t", "F"], tuple[float, float]]:
-    if k == 1 and m == 1:
-        return "t", (1.0, float(n - q))
-    if k == 1:
-        return "F", (float(m), float(n - q))
-    return "F", (float(k), float(n - q - k + 1))
-
-
 def _wilson(k: int, n: int, level: float) -> tuple[float, float]:
     ci = scipy.stats.binomtest(k, n).proportion_ci(confidence_level=level, method="wilson")
     return float(ci.low), float(ci.high)
@@ -464,29 +456,18 @@ def _rates(n_value: int, found: np.ndarray, *, layout: PilotLayout, simulations:
 def _analyse(Y, G, L, *, method, trim, alternative, correction, seed, graph,
              memory_limit) -> tuple[np.ndarray, np.ndarray]:
     """The statistic and corrected p of one simulated study, as the pilot's test computes them."""
-    from ..group_level.glm import group_statistic, p_values
+    from ..group_level import group_statistics
 
-    n, k, _ = Y.shape
-    if method == "glm":
-        kind, df = _kind_and_df(k, L.shape[0], n, G.shape[1])
-        stat = group_statistic(Y, G, L)
-        p = p_values(stat, kind, df, alternative=alternative)
-        extra = {}
-    else:
-        from ..group_level.robust import trimmed_test, welch_test
-        stats = (trimmed_test(Y[:, 0], G, L, trim=trim, alternative=alternative) if method == "trimmed"
-                 else welch_test(Y[:, 0], G, L, alternative=alternative))
-        kind, df, stat, p = "t", stats.df, stats.statistic, stats.p
-        extra = {"method": method, "trim": trim}
+    stats = group_statistics(Y, G, L, method=method, trim=trim, alternative=alternative, intervals=False)
     if correction.method not in PERMUTATION_METHODS:
-        return stat, adjust_p(p, correction)
+        return stats.statistic, adjust_p(stats.p, correction)
     from ..inference.permutation import permutation_test
-    perm = permutation_test(Y, G, L, kind=kind, df=df, alternative=alternative,
+
+    extra = {} if method == "glm" else {"method": method, "trim": trim}
+    perm = permutation_test(Y, G, L, kind=stats.kind, df=stats.df, alternative=alternative,
                             correction=correction.model_copy(update={"seed": seed}), graph=graph,
                             memory_limit=memory_limit, **extra)
-    return stat, perm.p_corrected
-
-
+    return stats.statistic, perm.p_corrected
 def _notes(ns, *, layout: PilotLayout, per: str, effect_scale: float, correction, target_mask, scheme,
            alpha: float, n0: int) -> list[str]:
     notes = []
