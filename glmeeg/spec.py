@@ -16,6 +16,7 @@ import math
 import re
 import string
 import tomllib
+import warnings
 from pathlib import Path
 from typing import Literal, Union
 
@@ -28,7 +29,20 @@ __all__ = ["DataSpec", "SubjectModelSpec", "GroupModelSpec", "TestSpec", "Design
            "Contrast", "load_design", "parse_design"]
 
 Alternative = Literal["two-sided", "greater", "less"]
-CorrectionName = Literal["none", "bonferroni", "holm", "fdr", "max", "cluster", "tfce"]
+CorrectionName = Literal["none", "bonferroni", "holm", "fdr", "max-statistic", "cluster", "tfce"]
+# Correction names of earlier releases, accepted with a deprecation warning for one release.
+DEPRECATED_CORRECTIONS = {"max": "max-statistic"}
+PERMUTATION_CORRECTIONS = ("max-statistic", "cluster", "tfce")
+
+
+def current_correction_name(name: str) -> str:
+    """A correction's name, an earlier release's name replaced (with a DeprecationWarning)."""
+    if name in DEPRECATED_CORRECTIONS:
+        warnings.warn(f"correction {name!r} is now {DEPRECATED_CORRECTIONS[name]!r}; the old name goes "
+                      "in the next release", DeprecationWarning, stacklevel=3)
+        return DEPRECATED_CORRECTIONS[name]
+    return name
+
 # Keys that belong to one family of corrections only.
 _PERMUTATION_KEYS = ("permutations", "seed", "resampling")
 _CLUSTER_KEYS = ("cluster_threshold", "cluster_statistic")
@@ -198,6 +212,11 @@ class TestSpec(_Strict):
     group_contrast: Contrast = Field("Intercept", description="contrast of group-level columns; a list = joint F")
     group_formula: str | None = Field(None, description="group formula of this test; default: [group_model].formula")
     correction: CorrectionName = "fdr"
+
+    @field_validator("correction", mode="before")
+    @classmethod
+    def _current_correction(cls, v):
+        return current_correction_name(v) if isinstance(v, str) else v
     alpha: float = Field(0.05, gt=0, lt=1)
     alternative: Alternative = "two-sided"
     confidence_level: float = Field(0.95, gt=0, lt=1, description="level of the effect-size intervals")
@@ -209,7 +228,7 @@ class TestSpec(_Strict):
                            "group estimate (0: none; 100 at least)")
     bootstrap_method: Literal["bca", "percentile"] = "bca"
     permutations: int | None = Field(None, ge=1, le=10_000_000,
-                                     description="resamplings for max / cluster / tfce (default 5000)")
+                                     description=f"resamplings for max-statistic / cluster / tfce (default {defaults.PERMUTATIONS})")
     seed: int | None = Field(None, ge=0, le=2**63 - 1, description="seed of the resamplings")
     resampling: Literal["auto", "sign-flip", "permute"] | None = Field(
         None, description="sign-flip or permute subjects; default: chosen from the design")
@@ -221,7 +240,7 @@ class TestSpec(_Strict):
 
     @model_validator(mode="after")
     def _keys_match_correction(self) -> "TestSpec":
-        families = {"permutation": (_PERMUTATION_KEYS, ("max", "cluster", "tfce")),
+        families = {"permutation": (_PERMUTATION_KEYS, PERMUTATION_CORRECTIONS),
                     "cluster": (_CLUSTER_KEYS, ("cluster",)), "tfce": (_TFCE_KEYS, ("tfce",))}
         if 0 < self.bootstrap < 100:
             raise ValueError(f"bootstrap needs at least 100 resamples (or 0 for none); got {self.bootstrap}")

@@ -201,7 +201,7 @@ def test_points_without_a_digit_are_treated_one_way_under_every_correction(corre
     g = group_test(Y, G, [[0.0, 1.0]])
     assert np.isnan(g.statistic[:2]).all() and np.isnan(g.p[:2]).all()
     assert np.isfinite(g.statistic[2:]).all()
-    if correction.method in ("max", "cluster", "tfce"):
+    if correction.method in ("max-statistic", "cluster", "tfce"):
         r = permutation_test(Y, G, [[0.0, 1.0]], kind="t", df=g.df, correction=correction,
                              graph=_chain(Y.shape[1]))
         p_corr = r.p_corrected

@@ -1,6 +1,6 @@
 """Every bad input gets one line on stderr, exit code 2, no traceback and nothing written.
 
-Each case writes a small valid study with :func:`conftest.write_study`, breaks one thing, runs
+Each case writes a small valid study with :func:`glmeeg.testing.write_study`, breaks one thing, runs
 ``glmeeg run`` in-process and checks the whole contract: exit code 2, nothing on stdout, exactly
 one non-empty line on stderr starting with ``error:`` that names what is wrong and where, no
 traceback, no output folder and no partial folder beside it.
@@ -12,8 +12,6 @@ import io
 import json
 import re
 import shutil
-import subprocess
-import sys
 import warnings
 from pathlib import Path
 from types import SimpleNamespace
@@ -23,12 +21,12 @@ import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
-from conftest import DEFAULT_TESTS, write_study
 from glmeeg.cli import app
+from glmeeg.testing import (DEFAULT_TESTS, SMALL_STUDY, assert_one_line_error, run_glmeeg,
+                            write_study)
 
-# Small enough that the whole corpus runs in seconds: 6 subjects x 12 trials x 3 channels x 5 times.
-SMALL = dict(n_subjects=6, n_trials=12, n_channels=3, n_times=5, seed=7)
-
+# SMALL_STUDY (6 subjects x 12 trials x 3 channels x 5 times) is small enough that the whole
+# corpus runs in seconds.
 
 # --- mutation helpers ------------------------------------------------------------------------
 
@@ -59,7 +57,7 @@ def tblock(body: str, name: str = "b-vs-a") -> str:
 
 
 # --- the mutations ---------------------------------------------------------------------------
-# Each is called as mutate(root, design) after write_study(root, **SMALL, **study_kwargs).
+# Each is called as mutate(root, design) after write_study(root, **SMALL_STUDY, **study_kwargs).
 
 def _unlink(path):
     return lambda root, design: (root / path).unlink()
@@ -242,12 +240,12 @@ _CASES = [
      ["test[0].name", "cached subject fits"], {}),
     ("test-name-trailing-newline", _tests(tblock('subject_contrast = "condition[T.b]"', "b-vs-a\\n")),
      ["test[0].name", "folder name"], {}),
-    ("permutations-as-text", _tests(tblock('subject_contrast = "condition[T.b]"\ncorrection = "max"\n'
+    ("permutations-as-text", _tests(tblock('subject_contrast = "condition[T.b]"\ncorrection = "max-statistic"\n'
                                            'permutations = "200"')),
      ["test[0].permutations", "integer", "'200'"], {}),
     ("alpha-as-text", _tests(tblock('subject_contrast = "condition[T.b]"\nalpha = "0.05"')),
      ["test[0].alpha", "number", "'0.05'"], {}),
-    ("permutations-as-float", _tests(tblock('subject_contrast = "condition[T.b]"\ncorrection = "max"\n'
+    ("permutations-as-float", _tests(tblock('subject_contrast = "condition[T.b]"\ncorrection = "max-statistic"\n'
                                             'permutations = 200.0')),
      ["test[0].permutations", "integer"], {}),
     ("duplicate-test-names", _tests(tblock('subject_contrast = "condition[T.b]"', "b-vs-a")
@@ -395,33 +393,18 @@ def _params():
             for case_id, mutate, fragments, kwargs in _CASES]
 
 
-def assert_clean_error(result, fragments) -> str:
-    """Exit 2, empty stdout, one 'error:' line on stderr holding every fragment, no traceback."""
-    err = result.stderr
-    assert result.exit_code == 2, (result.exit_code, result.output, result.exception)
-    assert "Traceback" not in result.output
-    assert result.stdout == "", result.stdout
-    assert err.endswith("\n") and err.count("\n") == 1, repr(err)
-    line = err.rstrip("\n")
-    assert line.startswith("error: ") and len(line) > len("error: "), repr(line)
-    assert "\r" not in line
-    for f in fragments:
-        assert f in line, f"{f!r} not in {line!r}"
-    return line
-
-
 @pytest.mark.parametrize(("mutate", "fragments", "kwargs"), _params())
 def test_bad_input_is_one_line_exit_2_nothing_written(tmp_path, monkeypatch, mutate, fragments, kwargs):
     monkeypatch.chdir(tmp_path)  # a formula that escaped would 'touch X' here
     root = tmp_path / "study"
-    design = write_study(root, **{**SMALL, **kwargs})
+    design = write_study(root, **{**SMALL_STUDY, **kwargs})
     if mutate is not None:
         mutate(root, design)
     out = tmp_path / "results" / "run1"
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         result = CliRunner().invoke(app, ["run", str(design), "--out", str(out)])
-    assert_clean_error(result, fragments)
+    assert_one_line_error(result, fragments)
     # Outside pytest a warning is printed on stderr and breaks the one-line promise.
     assert [str(w.message) for w in caught] == []
     assert not out.exists()
@@ -431,14 +414,14 @@ def test_bad_input_is_one_line_exit_2_nothing_written(tmp_path, monkeypatch, mut
 
 def test_check_reports_the_same_error(tmp_path):
     root = tmp_path / "study"
-    design = write_study(root, **SMALL)
+    design = write_study(root, **SMALL_STUDY)
     save_epochs(root, "s05", load_epochs(root, "s05")[:, :2])
     result = CliRunner().invoke(app, ["check", str(design)])
-    assert_clean_error(result, ["subject s05", "shape"])
+    assert_one_line_error(result, ["subject s05", "shape"])
 
 
 def test_output_folder_with_other_files_is_refused_and_untouched(tmp_path):
-    design = write_study(tmp_path / "study", **SMALL)
+    design = write_study(tmp_path / "study", **SMALL_STUDY)
     out = tmp_path / "thesis"
     out.mkdir()
     (out / "chapter1.txt").write_bytes(b"do not lose me\n")
@@ -446,7 +429,7 @@ def test_output_folder_with_other_files_is_refused_and_untouched(tmp_path):
     (out / "figures" / "f1.svg").write_bytes(b"<svg/>")
     before = {p.relative_to(out): p.read_bytes() for p in out.rglob("*") if p.is_file()}
     result = CliRunner().invoke(app, ["run", str(design), "--out", str(out)])
-    assert_clean_error(result, [str(out), "files glmeeg did not write", "chapter1.txt", "figures/"])
+    assert_one_line_error(result, [str(out), "files glmeeg did not write", "chapter1.txt", "figures/"])
     after = {p.relative_to(out): p.read_bytes() for p in out.rglob("*") if p.is_file()}
     assert after == before
     assert sorted(p.name for p in out.iterdir()) == ["chapter1.txt", "figures"]
@@ -454,31 +437,31 @@ def test_output_folder_with_other_files_is_refused_and_untouched(tmp_path):
 
 
 def test_output_path_that_is_a_file_is_refused(tmp_path):
-    design = write_study(tmp_path / "study", **SMALL)
+    design = write_study(tmp_path / "study", **SMALL_STUDY)
     out = tmp_path / "out.txt"
     out.write_bytes(b"keep")
     result = CliRunner().invoke(app, ["run", str(design), "--out", str(out)])
-    assert_clean_error(result, [str(out), "not a folder"])
+    assert_one_line_error(result, [str(out), "not a folder"])
     assert out.read_bytes() == b"keep"
 
 
 def test_output_path_below_a_file_is_refused_before_fitting(tmp_path):
-    design = write_study(tmp_path / "study", **SMALL)
+    design = write_study(tmp_path / "study", **SMALL_STUDY)
     (tmp_path / "notes.txt").write_bytes(b"keep")
     out = tmp_path / "notes.txt" / "run1"
     result = CliRunner().invoke(app, ["run", str(design), "--out", str(out)])
-    assert_clean_error(result, [str(out), "notes.txt is a file"])
+    assert_one_line_error(result, [str(out), "notes.txt is a file"])
     assert (tmp_path / "notes.txt").read_bytes() == b"keep"
 
 
 def test_progress_does_not_glue_onto_the_error_line(tmp_path):
     """A data error found after some subjects were fitted is still one clean line."""
     root = tmp_path / "study"
-    design = write_study(root, **SMALL)
+    design = write_study(root, **SMALL_STUDY)
     save_epochs(root, "s06", _nan(np.nan)(load_epochs(root, "s06")))
     out = tmp_path / "out"
     result = CliRunner().invoke(app, ["run", str(design), "--out", str(out)])
-    assert_clean_error(result, ["subject s06", "NaN"])
+    assert_one_line_error(result, ["subject s06", "NaN"])
     assert not out.exists()
 
 
@@ -488,7 +471,7 @@ def test_error_on_a_terminal_starts_a_clean_line(tmp_path, monkeypatch):
 
     monkeypatch.setattr(cli, "sys", SimpleNamespace(stderr=SimpleNamespace(isatty=lambda: True)))
     root = tmp_path / "study"
-    design = write_study(root, **SMALL)
+    design = write_study(root, **SMALL_STUDY)
     save_epochs(root, "s04", _nan(np.nan)(load_epochs(root, "s04")))
     result = CliRunner().invoke(app, ["run", str(design), "--out", str(tmp_path / "out")])
     assert result.exit_code == 2
@@ -504,21 +487,21 @@ def test_error_on_a_terminal_starts_a_clean_line(tmp_path, monkeypatch):
 def test_show_on_a_non_result_is_one_line(tmp_path, args):
     (tmp_path / "notes.txt").write_text("x")
     result = CliRunner().invoke(app, [a.format(tmp=tmp_path) for a in args])
-    assert_clean_error(result, ["not a glmeeg result folder"])
+    assert_one_line_error(result, ["not a glmeeg result folder"])
 
 
 @pytest.mark.parametrize("value", [
     pytest.param(np.nan, id="nan"),
     pytest.param(np.inf, id="inf"),
 ])
+@pytest.mark.slow  # a real glmeeg process
 def test_real_process_stderr_is_one_line(tmp_path, value):
     """Outside the test runner: warnings and progress reach the real stderr too."""
     root = tmp_path / "study"
-    design = write_study(root, **SMALL)
+    design = write_study(root, **SMALL_STUDY)
     save_epochs(root, "s04", _nan(value)(load_epochs(root, "s04")))
     out = tmp_path / "out"
-    proc = subprocess.run([sys.executable, "-m", "glmeeg", "run", str(design), "--out", str(out)],
-                          capture_output=True, text=True, cwd=tmp_path, timeout=120)
+    proc = run_glmeeg("run", design, "--out", out, cwd=tmp_path)
     assert proc.returncode == 2, proc.stderr
     assert proc.stdout == ""
     assert proc.stderr.count("\n") == 1 and proc.stderr.startswith("error: subject s04: "), proc.stderr
@@ -530,7 +513,7 @@ def test_real_process_stderr_is_one_line(tmp_path, value):
 @pytest.fixture(scope="module")
 def saved_run(tmp_path_factory) -> Path:
     root = tmp_path_factory.mktemp("saved")
-    design = write_study(root / "study", **SMALL)
+    design = write_study(root / "study", **SMALL_STUDY)
     result = CliRunner().invoke(app, ["run", str(design), "--out", str(root / "out"), "-q"])
     assert result.exit_code == 0, result.output
     return root / "out"
@@ -597,12 +580,12 @@ def test_show_on_a_damaged_result_is_one_line(saved_run, tmp_path, mutate, fragm
     shutil.copytree(saved_run, folder)
     mutate(folder)
     result = CliRunner().invoke(app, ["show", str(folder)])
-    assert_clean_error(result, fragments)
+    assert_one_line_error(result, fragments)
 
 
 def test_an_unknown_scheduler_protocol_is_one_line(tmp_path):
-    design = write_study(tmp_path / "study", **SMALL)
+    design = write_study(tmp_path / "study", **SMALL_STUDY)
     result = CliRunner().invoke(app, ["run", str(design), "--out", str(tmp_path / "out"),
                                       "--scheduler", "foo://x"])
-    assert_clean_error(result, ["--scheduler foo://x", "unknown protocol"])
+    assert_one_line_error(result, ["--scheduler foo://x", "unknown protocol"])
     assert not (tmp_path / "out").exists()

@@ -68,3 +68,22 @@ def test_a_changed_tuning_default_reaches_the_fit():
         defaults.ROBUST_TUNING["huber"] = saved
     assert changed.tuning == 2.5 and np.array_equal(changed.betas, given.betas)
     assert not np.array_equal(base.betas, changed.betas)
+
+
+def test_the_old_correction_name_max_is_read_with_a_deprecation_note(tmp_path):
+    """`correction = "max"` (glmeeg 0.1) is now "max-statistic": accepted for one release with a
+    note on the command line; results saved under the old name still load."""
+    from typer.testing import CliRunner
+
+    from glmeeg.cli import app
+    from glmeeg.inference.corrections import MaxStatistic
+
+    test = TRIMMED.replace('group_method = "trimmed"\ncorrection = "holm"', 'correction = "max"\npermutations = 99')
+    design = write_study(tmp_path / "study", n_subjects=6, n_trials=12, n_channels=2, n_times=4, tests=test)
+    with pytest.warns(DeprecationWarning, match="'max' is now 'max-statistic'"):
+        spec = glmeeg.load_design(design)
+    assert spec.test[0].correction == "max-statistic"
+    result = CliRunner().invoke(app, ["check", str(design)])
+    assert result.exit_code == 0, result.output
+    assert "note: correction 'max' is now 'max-statistic'" in result.stderr
+    assert MaxStatistic.model_validate({"method": "max", "permutations": 99}).method == "max-statistic"

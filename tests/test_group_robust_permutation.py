@@ -4,7 +4,7 @@ Outside sources are named beside each check: ``scipy.stats.permutation_test`` by
 enumeration, with scipy's own statistics (``scipy.stats.ttest_ind(..., trim=, equal_var=False)``
 for Yuen, ``equal_var=False`` for Welch, ``scipy.stats.trim_mean`` with the winsorized SE of
 ``scipy.stats.mstats.winsorize`` for the one-sample trimmed t); the planted effect of the
-conftest study; scipy's t quantile for the cluster-forming threshold.
+glmeeg.testing study; scipy's t quantile for the cluster-forming threshold.
 """
 
 from __future__ import annotations
@@ -19,7 +19,7 @@ import scipy.stats
 from typer.testing import CliRunner
 
 import glmeeg
-from conftest import write_study
+from glmeeg.testing import write_study
 from glmeeg.cli import app
 from glmeeg.errors import ModelError
 from glmeeg.group_level.robust import trimmed_test, welch_test
@@ -301,7 +301,7 @@ subject_contrast = "condition[T.b]"
 group_formula = "group"
 group_contrast = "group[T.y]"
 group_method = "welch"
-correction = "max"
+correction = "max-statistic"
 permutations = 200
 seed = 6
 """
@@ -311,6 +311,7 @@ def invoke(*args):
     return CliRunner().invoke(app, [str(a) for a in args])
 
 
+@pytest.mark.slow  # a run of six resampling tests
 def test_design_file_runs_robust_tests_with_tfce_cluster_and_max(tmp_path):
     design = write_study(tmp_path / "study", n_subjects=12, n_trials=30, n_channels=8, n_times=8,
                          seed=4, effect=1.5, tests=PIPELINE_TESTS)
@@ -323,7 +324,7 @@ def test_design_file_runs_robust_tests_with_tfce_cluster_and_max(tmp_path):
     summary = json.loads((folder / "summary.json").read_text())
     assert summary["resampling"]["scheme"] == "sign-flip" and summary["resampling"]["n_resamplings"] == 200
     assert "tfce" in points.columns
-    # The planted effect (conftest): condition b at Cz, samples 2-4; nothing elsewhere.
+    # The planted effect (glmeeg.testing.write_study): condition b at Cz, samples 2-4; nothing elsewhere.
     assert points["significant"].any()
     assert set(points.loc[points["significant"], "channel"]) == {"Cz"}
     assert (np.sign(points["tfce"]) == np.sign(points["statistic"])).all()

@@ -28,7 +28,7 @@ import numpy as np
 import pytest
 from typer.testing import CliRunner
 
-from conftest import write_study
+from glmeeg.testing import HANG_TIMEOUT, write_study
 from glmeeg.cli import app
 from glmeeg.results import load_run_folder, recover_results
 
@@ -93,6 +93,7 @@ def _clean(folder: Path) -> list[str]:
 
 
 @pytest.mark.parametrize("moment", ["writing", "between-renames", "after-swap"])
+@pytest.mark.slow  # runs, one in a real process
 def test_a_run_killed_while_writing_leaves_a_complete_result(tmp_path, moment):
     out = tmp_path / "out"
     runner = CliRunner()
@@ -102,7 +103,7 @@ def test_a_run_killed_while_writing_leaves_a_complete_result(tmp_path, moment):
     assert _seeds(out) == {1}
     design = _study(tmp_path / "s", seed=2)  # the same study, other seeds: another result
     proc = subprocess.run([sys.executable, "-c", KILL_DURING_WRITE, str(design), str(out), moment],
-                          capture_output=True, text=True, timeout=300)
+                          capture_output=True, text=True, timeout=HANG_TIMEOUT)
     assert proc.returncode == -signal.SIGKILL, (proc.returncode, proc.stderr)
     # The output folder loads as one whole run: the earlier one unless the swap was done.
     expected = {2} if moment == "after-swap" else {1}
@@ -123,7 +124,7 @@ def test_recovery_restores_the_earlier_results_when_the_output_is_missing(tmp_pa
     assert runner.invoke(app, ["run", str(_study(tmp_path / "s", seed=1)), "--out", str(out),
                                "-q", "--no-report"]).exit_code == 0
     dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
-                          capture_output=True, text=True).stdout.strip()
+                          capture_output=True, text=True, timeout=HANG_TIMEOUT).stdout.strip()
     os.replace(out, tmp_path / f".out.{dead}.old")
     partial = tmp_path / f".out.{dead}.abc123_x.partial"  # a killed writer's, with its mark
     partial.mkdir()
@@ -145,7 +146,7 @@ def test_a_folder_of_the_user_named_like_a_leftover_is_never_moved(tmp_path):
     """A read-only command repairs only glmeeg's own leftovers: a user's ``.NAME.PID.old``
     holding their files stays where it is."""
     dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
-                          capture_output=True, text=True).stdout.strip()
+                          capture_output=True, text=True, timeout=HANG_TIMEOUT).stdout.strip()
     theirs = tmp_path / f".lo.{dead}.old"
     theirs.mkdir()
     (theirs / "data.txt").write_text("mine")
@@ -159,6 +160,7 @@ def _digests(folder: Path) -> dict:
             for p in sorted(folder.rglob("*")) if p.is_file()}
 
 
+@pytest.mark.slow  # three runs with their reports
 def test_reruns_are_byte_identical(tmp_path, monkeypatch):
     design = _study(tmp_path / "s", seed=5)
     runner = CliRunner()
@@ -317,7 +319,7 @@ main()
 
 def test_interrupt_during_start_up_is_one_line_and_exit_130(tmp_path):
     proc = subprocess.run([sys.executable, "-c", INTERRUPT_AT_START_UP], capture_output=True,
-                          text=True, cwd=tmp_path)
+                          text=True, cwd=tmp_path, timeout=HANG_TIMEOUT)
     assert proc.returncode == 130, proc.stderr
     assert proc.stderr == "interrupted; no results were written\n"
     assert proc.stdout == ""
@@ -400,7 +402,7 @@ def test_a_long_note_on_a_terminal_stays_one_line():
 def _numbers_study(root: Path, transform) -> Path:
     design = write_study(root, n_subjects=8, n_trials=12, n_channels=2, n_times=4, seed=5,
                          tests='[[test]]\nname = "b"\nsubject_contrast = "condition[T.b]"\n'
-                               'correction = "max"\npermutations = 500\nseed = 1\n')
+                               'correction = "max-statistic"\npermutations = 500\nseed = 1\n')
     for f in (root / "epochs").glob("*.npy"):
         np.save(f, transform(np.load(f).astype(np.float64)))
     return design

@@ -5,7 +5,7 @@ from __future__ import annotations
 import pytest
 
 import glmeeg
-from conftest import write_study
+from glmeeg.testing import write_study
 from glmeeg.report.methods import methods_paragraph
 
 # One base design; each case below changes one setting that changes the result.
@@ -46,7 +46,7 @@ CASES = [
     ("seed", None, BASE_TEST.replace("seed = 3", "seed = 4"), None),
     ("cluster threshold", None, BASE_TEST + "cluster_threshold = 3.0\n", None),
     ("cluster statistic", None, BASE_TEST + 'cluster_statistic = "extent"\n', None),
-    ("correction max", None, BASE_TEST.replace('"cluster"', '"max"'), None),
+    ("correction max", None, BASE_TEST.replace('"cluster"', '"max-statistic"'), None),
     ("correction tfce", None, BASE_TEST.replace('"cluster"', '"tfce"'), None),
     ("tfce extent", None, BASE_TEST.replace('"cluster"', '"tfce"') + "tfce_extent_exponent = 1.0\n", None),
     ("tfce height", None, BASE_TEST.replace('"cluster"', '"tfce"') + "tfce_height_exponent = 1.0\n", None),
@@ -91,6 +91,7 @@ def test_base_paragraph_states_the_main_settings(base):
 
 
 @pytest.mark.parametrize("name, subject_extra, tests, change", CASES, ids=[c[0] for c in CASES])
+@pytest.mark.slow  # 30 runs
 def test_every_setting_that_changes_the_result_changes_the_paragraph(tmp_path, base, name,
                                                                      subject_extra, tests, change):
     assert _paragraph(tmp_path, name, subject_extra, tests, change) != base

@@ -20,7 +20,7 @@ import scipy.stats
 from typer.testing import CliRunner
 
 import glmeeg
-from conftest import write_study
+from glmeeg.testing import write_study
 from glmeeg.cli import app
 from glmeeg.errors import ModelError
 from glmeeg.results.findings import CLUSTER_CAUTION
@@ -354,7 +354,7 @@ PIPELINE_TESTS = """\
 [[test]]
 name = "b-max"
 subject_contrast = "condition[T.b]"
-correction = "max"
+correction = "max-statistic"
 permutations = 200
 seed = 1
 
@@ -393,9 +393,11 @@ def permutation_run(tmp_path_factory):
     return out
 
 
+@pytest.mark.slow  # a run of three resampling tests with its report
 def test_pipeline_cluster_outputs(permutation_run):
     # The layout checked is the documented one (clusters.csv columns of glmeeg.results.findings); the
-    # outside values are the planted effect (conftest) and scipy's t quantile for the threshold.
+    # outside values are the planted effect (glmeeg.testing.write_study) and scipy's t quantile
+    # for the threshold.
     folder = permutation_run / "b-cluster"
     clusters = pd.read_csv(folder / "clusters.csv")
     assert list(clusters.columns) == CLUSTER_COLUMNS
@@ -403,7 +405,7 @@ def test_pipeline_cluster_outputs(permutation_run):
     sig = clusters[clusters["significant"]]
     assert len(sig) >= 1
     # The planted effect: condition b at channel Cz (index 1), samples 2-4, i.e. -0.08 to
-    # -0.06 s (conftest's time_start -0.1 s at 100 Hz).
+    # -0.06 s (write_study's time_start -0.1 s at 100 Hz).
     top = sig.iloc[0]
     assert top["sign"] == "positive" and "Cz" in top["channels"].split()
     assert top["first_time"] <= -0.08 + 1e-9 and top["last_time"] >= -0.06 - 1e-9
@@ -438,6 +440,7 @@ def test_pipeline_cluster_outputs(permutation_run):
 
 
 @pytest.mark.parametrize("name", ["b-tfce", "b-max"])
+@pytest.mark.slow  # a run of three resampling tests with its report
 def test_pipeline_tfce_and_max_outputs(permutation_run, name):
     folder = permutation_run / name
     points = pd.read_csv(folder / "points.csv")
@@ -457,6 +460,7 @@ def test_pipeline_tfce_and_max_outputs(permutation_run, name):
     assert shown.exit_code == 0 and "significant regions of significant points:" in shown.stdout
 
 
+@pytest.mark.slow  # a run with its report
 def test_time_frequency_study_with_tfce(tmp_path):
     # Channel x frequency x time maps take the same path; clusters.csv gains frequency columns.
     tests = ('[[test]]\nname = "b-tfce"\nsubject_contrast = "condition[T.b]"\ncorrection = "tfce"\n'
@@ -486,7 +490,7 @@ BAD_SETTINGS = {
     "tfce-height-negative": (_block('correction = "tfce"\ntfce_height_exponent = -1'),
                              ["tfce_height_exponent"], ""),
     "sign-flip-on-two-groups": (_block('group_formula = "group"\ngroup_contrast = "group[T.y]"\n'
-                                       'correction = "max"\nresampling = "sign-flip"'),
+                                       'correction = "max-statistic"\nresampling = "sign-flip"'),
                                 ["t1", "sign-flip"], ""),
     "neighbour-file-unknown-channel": (_block('correction = "tfce"'), ["neighbours.csv", "Xq9"],
                                        'neighbours = "neighbours.csv"'),
@@ -516,6 +520,7 @@ def test_bad_permutation_settings_are_one_line_exit_2(tmp_path, case):
 
 # --- a planted effect -------------------------------------------------------------------------
 
+@pytest.mark.slow  # the demo study, 1,000 TFCE sign-flips
 def test_tfce_finds_the_planted_urgency_effect_and_nothing_remote(tmp_path):
     from glmeeg.pipeline import fit_subjects, plan_analysis, test_group
     from glmeeg.results import provenance

@@ -8,6 +8,7 @@ fit only the other subjects, and end with results bitwise equal to an uninterrup
 from __future__ import annotations
 
 import json
+import shutil
 import signal
 import subprocess
 import sys
@@ -21,13 +22,13 @@ from glmeeg.subject_level.cache import CACHE_FOLDER, FitCache
 from glmeeg.cli import app
 from glmeeg.results import load_test_results
 
-from conftest import write_study
+from glmeeg.testing import HANG_TIMEOUT, run_glmeeg, write_study
 
 TESTS = """\
 [[test]]
 name = "b-vs-a"
 subject_contrast = "condition[T.b]"
-correction = "max"
+correction = "max-statistic"
 permutations = 200
 seed = 7
 
@@ -65,16 +66,34 @@ def _arrays(folder: Path) -> dict:
     return out
 
 
+def _write(root: Path) -> Path:
+    return write_study(root, n_subjects=10, n_trials=30, n_channels=4, n_times=8, seed=21,
+                       effect=1.0, tests=TESTS)
+
+
 @pytest.fixture
 def design(tmp_path) -> Path:
-    return write_study(tmp_path / "study", n_subjects=10, n_trials=30, n_channels=4, n_times=8,
-                       seed=21, effect=1.0, tests=TESTS)
+    """A study of the test's own (for tests that change it)."""
+    return _write(tmp_path / "study")
 
 
-def test_killed_run_resumes_without_refitting(design, tmp_path):
+@pytest.fixture(scope="module")
+def shared(tmp_path_factory):
+    """The same study, which the tests below only read, and one uninterrupted run of it (``-q``,
+    with its report) that they copy before changing anything."""
+    root = tmp_path_factory.mktemp("resume")
+    design = _write(root / "study")
+    out = root / "out"
+    assert CliRunner().invoke(app, ["run", str(design), "--out", str(out), "-q"]).exit_code == 0
+    return design, out
+
+
+@pytest.mark.slow
+def test_killed_run_resumes_without_refitting(shared, tmp_path):
+    design, straight = shared
     out = tmp_path / "out"
     proc = subprocess.run([sys.executable, "-c", KILL_AFTER_FOUR, str(design), str(out)],
-                          capture_output=True, text=True, timeout=300)
+                          capture_output=True, text=True, timeout=HANG_TIMEOUT)
     assert proc.returncode == -signal.SIGKILL, (proc.returncode, proc.stderr)
     # Killed: no results, only the four finished fits (whole files, no temporary left over).
     assert sorted(p.name for p in out.iterdir()) == [CACHE_FOLDER]
@@ -86,8 +105,7 @@ def test_killed_run_resumes_without_refitting(design, tmp_path):
                 for p in cached for s in [f"s{i:02d}" for i in range(1, 11)]} - {False}
     assert len(subjects) == 4
 
-    rerun = subprocess.run([sys.executable, "-m", "glmeeg", "run", str(design), "--out", str(out),
-                            "--verbose", "--no-report"], capture_output=True, text=True, timeout=300)
+    rerun = run_glmeeg("run", design, "--out", out, "--verbose", "--no-report")
     assert rerun.returncode == 0, rerun.stderr
     taken = {line.split()[2].rstrip(":") for line in rerun.stderr.splitlines()
              if line.endswith("fit taken from the cache")}
@@ -99,30 +117,28 @@ def test_killed_run_resumes_without_refitting(design, tmp_path):
     assert all(after[name] == stamp for name, stamp in before.items())
     assert len(after) == 10
 
-    straight = tmp_path / "straight"
-    assert CliRunner().invoke(app, ["run", str(design), "--out", str(straight), "-q",
-                                    "--no-report"]).exit_code == 0
-    assert _arrays(out) == _arrays(straight)
+    assert _arrays(out) == _arrays(straight)  # the uninterrupted run
     assert json.loads((out / "run.json").read_text())["subjects"] == \
         json.loads((straight / "run.json").read_text())["subjects"]
 
 
-def test_rerun_takes_every_fit_from_the_cache_and_refit_ignores_it(design, tmp_path):
+@pytest.mark.slow
+def test_rerun_takes_every_fit_from_the_cache_and_refit_ignores_it(shared, tmp_path):
+    design, first_run = shared
     out = tmp_path / "out"
-    assert CliRunner().invoke(app, ["run", str(design), "--out", str(out), "-q"]).exit_code == 0
+    shutil.copytree(first_run, out)  # a finished run's folder
     first = _arrays(out)
-    second = subprocess.run([sys.executable, "-m", "glmeeg", "run", str(design), "--out", str(out), "-v"],
-                            capture_output=True, text=True, timeout=300)
+    second = run_glmeeg("run", design, "--out", out, "-v")
     assert second.returncode == 0, second.stderr
     assert second.stderr.count("fit taken from the cache") == 10 and " fitted: " not in second.stderr
     assert _arrays(out) == first
-    third = subprocess.run([sys.executable, "-m", "glmeeg", "run", str(design), "--out", str(out), "-v",
-                            "--refit"], capture_output=True, text=True, timeout=300)
+    third = run_glmeeg("run", design, "--out", out, "-v", "--refit")
     assert third.returncode == 0, third.stderr
     assert "fit taken from the cache" not in third.stderr and third.stderr.count(" fitted: ") == 10
     assert _arrays(out) == first
 
 
+@pytest.mark.slow
 def test_changed_data_or_model_is_refitted(design, tmp_path):
     """The key covers the data file's bytes and the model: a change refits that subject only,
     and entries no longer used are removed."""
@@ -133,29 +149,28 @@ def test_changed_data_or_model_is_refitted(design, tmp_path):
     y = np.load(path)
     y[0, 0, 0] += 1.0
     np.save(path, y)
-    rerun = subprocess.run([sys.executable, "-m", "glmeeg", "run", str(design), "--out", str(out), "-v"],
-                           capture_output=True, text=True, timeout=300)
+    rerun = run_glmeeg("run", design, "--out", out, "-v")
     assert rerun.returncode == 0, rerun.stderr
     assert [line.split()[2] for line in rerun.stderr.splitlines() if " fitted: " in line] == ["s03"]
     new = set(FitCache(out / CACHE_FOLDER).keys())
     assert len(new) == 10 and len(new - old) == 1 and len(old - new) == 1
     design.write_text(design.read_text().replace('formula = "condition + intensity"', 'formula = "condition"')
                       .replace('subject_contrast = "intensity"', 'subject_contrast = "condition[T.c]"'))
-    rerun = subprocess.run([sys.executable, "-m", "glmeeg", "run", str(design), "--out", str(out), "-v"],
-                           capture_output=True, text=True, timeout=300)
+    rerun = run_glmeeg("run", design, "--out", out, "-v")
     assert rerun.returncode == 0, rerun.stderr
     assert rerun.stderr.count(" fitted: ") == 10
     assert not (set(FitCache(out / CACHE_FOLDER).keys()) & new)
 
 
-def test_damaged_cache_entry_is_refitted(design, tmp_path):
+@pytest.mark.slow
+def test_damaged_cache_entry_is_refitted(shared, tmp_path):
+    design, first_run = shared
     out = tmp_path / "out"
-    assert CliRunner().invoke(app, ["run", str(design), "--out", str(out), "-q"]).exit_code == 0
+    shutil.copytree(first_run, out)  # a finished run's folder
     first = _arrays(out)
     victim = sorted((out / CACHE_FOLDER).iterdir())[0]
     victim.write_bytes(victim.read_bytes()[:100])  # a truncated file
-    rerun = subprocess.run([sys.executable, "-m", "glmeeg", "run", str(design), "--out", str(out), "-v"],
-                           capture_output=True, text=True, timeout=300)
+    rerun = run_glmeeg("run", design, "--out", out, "-v")
     assert rerun.returncode == 0, rerun.stderr
     assert "unreadable" in rerun.stderr and rerun.stderr.count(" fitted: ") == 1
     assert _arrays(out) == first

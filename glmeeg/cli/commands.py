@@ -472,10 +472,10 @@ def simulate_power_command(
         simulations: Annotated[Optional[int], typer.Option("--simulations", help="Simulated studies "
                                f"per n (default {defaults.SIMULATIONS}).")] = None,
         correction: Annotated[Optional[str], typer.Option("--correction", help="none | bonferroni | "
-                              "holm | fdr | max | cluster | tfce; default the test's own (with its "
+                              "holm | fdr | max-statistic | cluster | tfce; default the test's own (with its "
                               "settings).")] = None,
         permutations: Annotated[Optional[int], typer.Option("--permutations", help="Resamplings per "
-                                "simulated study for max / cluster / tfce (default "
+                                "simulated study for max-statistic / cluster / tfce (default "
                                 f"{defaults.SIMULATED_PERMUTATIONS}).")] = None,
         effect_scale: Annotated[Optional[float], typer.Option("--effect-scale", help="Factor on the "
                                 "test's observed effect, > 0 (default 1; below 1 allows for a pilot "
@@ -511,7 +511,7 @@ def simulate_power_command(
         except ValueError as e:
             raise GlmeegError(f"--correction: {e}") from None
     if permutations is not None and settings.method not in PERMUTATION_METHODS:
-        raise GlmeegError(f"--permutations: applies to the max, cluster and tfce corrections; this "
+        raise GlmeegError(f"--permutations: applies to the max-statistic, cluster and tfce corrections; this "
                           f"simulation uses '{settings.method}'")
     graph = None
     if neighbours is not None:

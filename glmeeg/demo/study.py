@@ -77,7 +77,7 @@ seed = 2
 [[test]]
 name = "loudness"
 subject_contrast = "loudness_db"
-correction = "max"
+correction = "max-statistic"
 permutations = 5000
 seed = 3
 

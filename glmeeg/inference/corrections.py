@@ -18,10 +18,14 @@ corrected p. Such points are never significant; the run reports how many there a
 
 from __future__ import annotations
 
+
 from typing import Annotated, Literal, Union
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, ConfigDict, Field, field_validator
+
+from .. import defaults
+from ..spec import PERMUTATION_CORRECTIONS, current_correction_name
 
 __all__ = ["NoCorrection", "Bonferroni", "Holm", "FalseDiscoveryRate", "MaxStatistic",
            "ClusterMass", "TFCE", "Correction", "PERMUTATION_METHODS", "correction_from_name",
@@ -89,7 +93,7 @@ class FalseDiscoveryRate(_Settings):
         return "Benjamini-Hochberg false discovery rate over all points"
 
 
-DEFAULT_PERMUTATIONS = 5000
+DEFAULT_PERMUTATIONS = defaults.PERMUTATIONS
 DEFAULT_SEED = 20090101
 Resampling = Literal["auto", "sign-flip", "permute"]
 
@@ -116,7 +120,13 @@ class MaxStatistic(_Permutation):
        neuroimaging: a primer with examples. Human Brain Mapping, 15(1), 1-25.
     """
 
-    method: Literal["max"] = "max"
+    # "max": this correction's name before glmeeg 0.2, still read from saved results.
+    method: Literal["max-statistic", "max"] = "max-statistic"
+
+    @field_validator("method")
+    @classmethod
+    def _current_name(cls, v: str) -> str:
+        return "max-statistic"
 
     def describe(self) -> str:
         return f"max-statistic permutation correction, {self._resampling_text()}"
@@ -170,8 +180,8 @@ class TFCE(_Permutation):
     """
 
     method: Literal["tfce"] = "tfce"
-    extent_exponent: float = Field(0.5, gt=0, le=10, allow_inf_nan=False)
-    height_exponent: float = Field(2.0, gt=0, le=10, allow_inf_nan=False)
+    extent_exponent: float = Field(defaults.TFCE_EXTENT_EXPONENT, gt=0, le=10, allow_inf_nan=False)
+    height_exponent: float = Field(defaults.TFCE_HEIGHT_EXPONENT, gt=0, le=10, allow_inf_nan=False)
 
     def describe(self) -> str:
         return (f"TFCE (E = {self.extent_exponent:g}, H = {self.height_exponent:g}) with max-TFCE "
@@ -180,16 +190,16 @@ class TFCE(_Permutation):
 
 Correction = Annotated[Union[NoCorrection, Bonferroni, Holm, FalseDiscoveryRate, MaxStatistic,
                              ClusterMass, TFCE], Field(discriminator="method")]
-PERMUTATION_METHODS = ("max", "cluster", "tfce")
+PERMUTATION_METHODS = PERMUTATION_CORRECTIONS
 
 _BY_NAME = {"none": NoCorrection, "bonferroni": Bonferroni, "holm": Holm, "fdr": FalseDiscoveryRate,
-            "max": MaxStatistic, "cluster": ClusterMass, "tfce": TFCE}
+            "max-statistic": MaxStatistic, "cluster": ClusterMass, "tfce": TFCE}
 
 
 def correction_from_name(name: str, **settings) -> Correction:
     """The settings object of the correction a design file names (``"none"``, ``"fdr"`` ...)."""
     try:
-        return _BY_NAME[name](**settings)
+        return _BY_NAME[current_correction_name(name)](**settings)
     except KeyError:
         raise ValueError(f"unknown correction {name!r}; expected one of {', '.join(_BY_NAME)}") from None
 

@@ -43,7 +43,6 @@ References
 
 from __future__ import annotations
 
-import itertools
 import math
 from dataclasses import dataclass, field
 from typing import Literal
@@ -56,21 +55,18 @@ from ..errors import ExecutionError, ModelError
 from ..group_level.glm import group_arrays
 from ..subject_level.ols import _conditioning
 from .corrections import TFCE, ClusterMass, MaxStatistic
+from .resampling import BLOCK, Scheme, _nuisance, choose_resampling, random_block, resamplings
 
 __all__ = ["BLOCK", "PermutationResult", "choose_resampling", "resamplings", "random_block",
            "null_chunk", "permutation_test",
            "cluster_forming_threshold"]
 
-# Resamplings per child seed stream.
-BLOCK = 100
 # Relative tolerance when comparing a resampled statistic with the observed one, so that the
 # identity (and exact ties) count as "at least as extreme" despite rounding.
 _TIE = 1e-12
 _KERNEL_BLOCK = 512
 # Resampled maps per batch at most (cache-sized work; memory_limit may lower it).
 _MAX_BATCH = 64
-
-Scheme = Literal["sign-flip", "permute"]
 
 
 @dataclass(frozen=True)
@@ -113,79 +109,6 @@ class PermutationResult:
     cluster_labels: np.ndarray | None = None
     clusters: list = field(default_factory=list)
     threshold: float | None = None
-
-
-def _in_span(v: np.ndarray, A: np.ndarray) -> bool:
-    if A.shape[1] == 0:
-        return False
-    coef, *_ = np.linalg.lstsq(A, v, rcond=None)
-    return float(np.linalg.norm(v - A @ coef)) <= 1e-9 * float(np.linalg.norm(v))
-
-
-def _nuisance(design: np.ndarray, contrast: np.ndarray) -> np.ndarray:
-    return design @ scipy.linalg.null_space(contrast)
-
-
-def choose_resampling(design: np.ndarray, contrast: np.ndarray, *, requested: str = "auto") -> Scheme:
-    """The resampling scheme that suits a group design and contrast.
-
-    Sign-flipping when the constant is not in the nuisance space (the test involves a mean),
-    permutation of subjects when it is. ``requested`` other than ``"auto"`` is checked against
-    that rule.
-
-    Raises
-    ------
-    ModelError
-        The requested scheme cannot test this contrast.
-    """
-    Z = _nuisance(design, contrast)
-    ones = np.ones(design.shape[0])
-    scheme: Scheme = "permute" if _in_span(ones, Z) else "sign-flip"
-    if requested not in ("auto", scheme):
-        if requested == "sign-flip":
-            raise ModelError("resampling 'sign-flip' does not suit this contrast: it compares subjects "
-                             "within a model that keeps a common mean, so subjects must be permuted "
-                             "(use 'permute' or 'auto')")
-        raise ModelError("resampling 'permute' cannot test this contrast: it involves the mean, which "
-                         "permuting subjects leaves unchanged; use 'sign-flip' or 'auto'")
-    return scheme
-
-
-def resamplings(scheme: Scheme, n: int, *, permutations: int, seed: int) -> tuple[np.ndarray, bool]:
-    """All resamplings of a test, one row each.
-
-    Returns
-    -------
-    rows : numpy.ndarray
-        ``(N, n)``: signs (int8, +1/-1) for sign-flipping, subject orders (int32) for
-        permutation. When exhaustive, row 0 is the identity.
-    exhaustive : bool
-        True when every possible resampling is listed (``N`` = 2^n or n!).
-    """
-    total = 2 ** n if scheme == "sign-flip" else math.factorial(n)
-    if total <= permutations:
-        if scheme == "sign-flip":
-            k = np.arange(total, dtype=np.int64)[:, None]
-            bits = (k >> np.arange(n, dtype=np.int64)[None, :]) & 1
-            return (1 - 2 * bits).astype(np.int8), True
-        return np.array(list(itertools.permutations(range(n))), dtype=np.int32), True
-    n_blocks = (permutations + BLOCK - 1) // BLOCK
-    blocks = [random_block(scheme, n, seed=seed, block=j, count=min(BLOCK, permutations - j * BLOCK))
-              for j in range(n_blocks)]
-    return np.concatenate(blocks), False
-
-
-def random_block(scheme: Scheme, n: int, *, seed: int, block: int, count: int = BLOCK) -> np.ndarray:
-    """Resamplings ``block * BLOCK`` to ``block * BLOCK + count`` of a test's random draw.
-
-    Block ``j`` comes from the ``j``-th child of ``SeedSequence(seed)`` (the child that
-    ``SeedSequence(seed).spawn(...)[j]`` gives), so any worker can make its own blocks and the
-    whole draw is the same however it is split.
-    """
-    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(block,)))
-    if scheme == "sign-flip":
-        return (1 - 2 * rng.integers(0, 2, size=(count, n))).astype(np.int8)
-    return np.argsort(rng.random((count, n)), axis=1, kind="stable").astype(np.int32)
 
 
 def cluster_forming_threshold(kind: str, df: tuple[float, float], alternative: str) -> float:
@@ -366,7 +289,7 @@ def _batch_max(work: _NullWork, maps: np.ndarray, best: np.ndarray) -> np.ndarra
     """Each map's maximum of the corrected statistic (``maps`` hold ``sign * statistic`` with
     non-finite values set to 0, as :func:`glmeeg.inference.kernels.scan_maps` leaves them)."""
     c = work.correction
-    if work.method == "max":
+    if work.method == "max-statistic":
         return best
     indptr, indices = work.graph
     grid = getattr(work.graph, "grid", None)
@@ -569,7 +492,7 @@ def permutation_test(estimates: np.ndarray, design: np.ndarray, contrast: np.nda
     result = dict(scheme=scheme, n_resamplings=N, exhaustive=exhaustive, seed=correction.seed,
                   p_uncorrected=p_unc, null_distribution=null, threshold=threshold)
     obs_clean = np.where(finite, observed, 0.0)
-    if correction.method == "max":
+    if correction.method == "max-statistic":
         p_corr = np.where(finite, p_of(_at_least(null, obs_or_f)), np.nan)
         return PermutationResult(p_corrected=np.minimum(p_corr, 1.0), **result)
     directed_obs = np.ascontiguousarray(sign * obs_clean)

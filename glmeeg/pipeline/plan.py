@@ -149,7 +149,7 @@ def plan_analysis(design: str | Path | DesignSpec, *, root: str | Path | None = 
     sgraph, graph, extra = None, None, {}
     needs = {t.spec.correction for t in tests} & set(PERMUTATION_METHODS)
     if needs:
-        sgraph, graph, extra = _neighbour_graph(spec, study, root, required=bool(needs - {"max"}),
+        sgraph, graph, extra = _neighbour_graph(spec, study, root, required=bool(needs - {"max-statistic"}),
                                                 warnings=warnings)
     return AnalysisPlan(design_file=design_file, spec=spec, study=study, subject_design=sdesign,
                         subject_matrices=matrices, tests=tuple(tests), warnings=tuple(warnings),

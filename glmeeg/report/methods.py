@@ -111,7 +111,7 @@ def _test(t: TestResult) -> str:
         scheme = _SCHEMES.get(r.scheme, r.scheme) if r is not None else "resampling"
         count = (f"all {r.n_resamplings} possible resamplings" if r is not None and r.exhaustive
                  else f"{c.permutations} random resamplings (seed {c.seed})")
-        if c.method == "max":
+        if c.method == "max-statistic":
             text += ("The family-wise error rate over all points was controlled with the permutation "
                      "distribution of the maximum statistic")
         elif c.method == "cluster":

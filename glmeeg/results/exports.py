@@ -99,11 +99,7 @@ def load_netcdf(path: str | Path) -> TestResult:
 
 
 def points_frame(result: TestResult) -> pd.DataFrame:
-    """Tidy table, one row per point (the content of ``points.csv``).
-
-    For F tests ``estimate`` is empty and each contrast row has a column
-    ``estimate: <label>``.
-    """
+    """:meth:`TestResult.to_frame` (documented there)."""
     df = result.axes.point_labels()
     if result.kind == "t":
         df["estimate"] = result.estimate[0]
@@ -140,26 +136,7 @@ def points_frame(result: TestResult) -> pd.DataFrame:
 
 
 def to_xarray(result: TestResult):
-    """Every array of the result as a labelled ``xarray.Dataset`` (needs xarray).
-
-    Maps have dims ``channel``, (``frequency``,) ``time``; ``estimate`` (and
-    ``estimate_low``/``estimate_high``) add ``contrast`` in front. The group test's inputs
-    come too: ``subject_estimates`` (``subject``, ``subject_contrast_row``, point dims),
-    ``group_design`` (``subject``, ``group_column``), ``subject_contrast``,
-    ``group_contrast`` and ``null_distribution`` (``resampling``). Fields that are None for
-    this test are left out. Scalar settings are attributes; ``settings_json`` holds every
-    setting that is not an array (clusters, provenance ...) as JSON. Booleans among the
-    attributes are stored as 0/1 integers (netCDF has no boolean attributes).
-
-    Returns
-    -------
-    xarray.Dataset
-
-    Raises
-    ------
-    GlmeegError
-        xarray is not installed.
-    """
+    """:meth:`TestResult.to_xarray` (documented there)."""
     xr = _need("xarray", "to_xarray", "xarray")
     dims = result.axes.dims
     coords: dict[str, Any] = {"channel": np.array(result.axes.channels, dtype=str),
@@ -226,27 +203,7 @@ def netcdf_attributes(result: TestResult) -> dict[str, Any]:
 
 
 def to_netcdf(result: TestResult, path: str | Path) -> Path:
-    """Write :meth:`to_xarray` as a netCDF-4 file, atomically (needs ``glmeeg[netcdf]``).
-
-    The file is written beside ``path`` under a temporary name and renamed into place, so a
-    failed write never leaves a partial file or damages an earlier one. :func:`read_netcdf`
-    gives back every variable bit for bit with its dtype (booleans stay booleans, NaN stays
-    NaN).
-
-    Parameters
-    ----------
-    path : str or Path
-        File to write (conventionally ``.nc``).
-
-    Returns
-    -------
-    Path
-
-    Raises
-    ------
-    GlmeegError
-        xarray or h5netcdf is not installed, or ``path`` cannot be written.
-    """
+    """:meth:`TestResult.to_netcdf` (documented there)."""
     ds = result.to_xarray()
     _need("h5netcdf", "to_netcdf", "netcdf")
     _need("h5py", "to_netcdf", "netcdf")

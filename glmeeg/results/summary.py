@@ -139,13 +139,7 @@ def findings(result: TestResult) -> dict:
 
 
 def summary(result: TestResult) -> dict:
-    """Everything ``summary.json`` holds; it follows :func:`summary_schema`.
-
-    Returns
-    -------
-    dict
-        Checked against :class:`Summary` (a mismatch is a bug in glmeeg).
-    """
+    """:meth:`TestResult.summary` (documented there)."""
     out = {"schema_version": result.schema_version, "test": result.name, "kind": result.kind,
             "df": list(result.df), "alternative": result.alternative, "alpha": result.alpha,
             "correction": result.correction.model_dump(), "n_subjects": result.n_subjects,
