@@ -83,37 +83,11 @@ def scalp_map(result: "TestResult | str | Path", *, time: float | None = None,
     names = list(result.axes.channels)
     if len(names) < 4:
         raise GlmeegError(f"scalp map: {len(names)} channels; at least 4 are needed to interpolate")
-    if positions is None:
-        from ..sensors.positions import standard_positions
-
-        positions = standard_positions(names)
-        missing = [n for n, p in zip(names, positions) if not np.isfinite(p).all()]
-        if missing:
-            raise GlmeegError(f"scalp map: no position for channel(s) {', '.join(missing[:5])} (not "
-                              "10-10 names); pass positions=")
-    positions = np.asarray(positions, dtype=np.float64)
-    if positions.shape != (len(names), 3) or not np.isfinite(positions).all():
-        raise GlmeegError(f"scalp map: positions must be ({len(names)}, 3) finite values; got "
-                          f"shape {positions.shape}")
+    positions = _positions(names, positions)
     stat = at_frequency(result.map("statistic"), fi)
     sig = at_frequency(result.map("significant"), fi).astype(bool)
     times = np.asarray(result.axes.times)
-    if time is not None and window is not None:
-        raise GlmeegError("scalp map: give time or window, not both")
-    if window is not None:
-        cols = np.flatnonzero((times >= window[0]) & (times <= window[1]))
-        if cols.size == 0:
-            raise GlmeegError(f"scalp map: window {window[0]:g}-{window[1]:g} s holds no sample "
-                              f"(times {times[0]:g} to {times[-1]:g} s)")
-        when = f"{1000 * window[0]:.0f}-{1000 * window[1]:.0f} ms"
-    else:
-        if time is None:
-            filled = np.nan_to_num(np.abs(stat), nan=-1.0)
-            col = int(np.unravel_index(np.argmax(filled), filled.shape)[1])
-        else:
-            col = int(np.argmin(np.abs(times - time)))
-        cols = np.array([col])
-        when = f"{1000 * times[col]:.0f} ms"
+    cols, when = _time_columns(stat, times, time=time, window=window)
     with np.errstate(all="ignore"):
         values = np.nanmean(stat[:, cols], axis=1)
     marked = sig[:, cols].any(axis=1)
@@ -140,13 +114,7 @@ def scalp_map(result: "TestResult | str | Path", *, time: float | None = None,
     outside_clear = colormap(style["cmap"], bad=(0.0, 0.0, 0.0, 0.0))  # off the head: nothing
     mesh = ax.pcolormesh(gx, gy, np.ma.masked_invalid(image), cmap=outside_clear,
                          vmin=style["vmin"], vmax=style["vmax"], shading="auto")
-    angle = np.linspace(0, 2 * np.pi, 200)
-    ax.plot(radius * np.cos(angle), radius * np.sin(angle), color="0.15", lw=1.5)
-    ax.plot([-0.09 * radius, 0.0, 0.09 * radius], [0.995 * radius, 1.09 * radius, 0.995 * radius],
-            color="0.15", lw=1.5)                                    # nose
-    for side in (-1, 1):                                             # ears
-        ax.plot(side * radius * (1 + 0.04 * np.sin(np.linspace(0, np.pi, 20))),
-                radius * 0.16 * np.cos(np.linspace(0, np.pi, 20)), color="0.15", lw=1.5)
+    _head(ax, radius)
     if (~marked).any():
         from matplotlib import patheffects
 
@@ -169,3 +137,49 @@ def scalp_map(result: "TestResult | str | Path", *, time: float | None = None,
     if footnote:
         add_footnote(fig, SCALP_FOOTNOTE)
     return fig
+
+
+def _positions(names: list[str], positions) -> np.ndarray:
+    """The sensors' positions: given, or the 10-10 positions of their names; checked."""
+    if positions is None:
+        from ..sensors.positions import standard_positions
+
+        positions = standard_positions(names)
+        missing = [n for n, p in zip(names, positions) if not np.isfinite(p).all()]
+        if missing:
+            raise GlmeegError(f"scalp map: no position for channel(s) {', '.join(missing[:5])} (not "
+                              "10-10 names); pass positions=")
+    positions = np.asarray(positions, dtype=np.float64)
+    if positions.shape != (len(names), 3) or not np.isfinite(positions).all():
+        raise GlmeegError(f"scalp map: positions must be ({len(names)}, 3) finite values; got "
+                          f"shape {positions.shape}")
+    return positions
+
+
+def _time_columns(stat: np.ndarray, times: np.ndarray, *, time, window) -> tuple[np.ndarray, str]:
+    """The samples the map shows (one time, the peak's, or a window) and their label."""
+    if time is not None and window is not None:
+        raise GlmeegError("scalp map: give time or window, not both")
+    if window is not None:
+        cols = np.flatnonzero((times >= window[0]) & (times <= window[1]))
+        if cols.size == 0:
+            raise GlmeegError(f"scalp map: window {window[0]:g}-{window[1]:g} s holds no sample "
+                              f"(times {times[0]:g} to {times[-1]:g} s)")
+        return cols, f"{1000 * window[0]:.0f}-{1000 * window[1]:.0f} ms"
+    if time is None:
+        filled = np.nan_to_num(np.abs(stat), nan=-1.0)
+        col = int(np.unravel_index(np.argmax(filled), filled.shape)[1])
+    else:
+        col = int(np.argmin(np.abs(times - time)))
+    return np.array([col]), f"{1000 * times[col]:.0f} ms"
+
+
+def _head(ax, radius: float) -> None:
+    """The head's outline, nose and ears."""
+    angle = np.linspace(0, 2 * np.pi, 200)
+    ax.plot(radius * np.cos(angle), radius * np.sin(angle), color="0.15", lw=1.5)
+    ax.plot([-0.09 * radius, 0.0, 0.09 * radius], [0.995 * radius, 1.09 * radius, 0.995 * radius],
+            color="0.15", lw=1.5)                                    # nose
+    for side in (-1, 1):                                             # ears
+        ax.plot(side * radius * (1 + 0.04 * np.sin(np.linspace(0, np.pi, 20))),
+                radius * 0.16 * np.cos(np.linspace(0, np.pi, 20)), color="0.15", lw=1.5)
