@@ -1,4 +1,6 @@
-"""Shared fixtures: small synthetic studies written in glmeeg's study layout.
+"""Shared fixtures and the suite's environment. The study builder and the other helpers are
+public, in :mod:`glmeeg.testing`: import them from there (this file is pytest's, not a module to
+import).
 
 Invented data for synthetic tests only; every reference value the tests compare against comes
 from an outside source named beside the check.
@@ -6,81 +8,21 @@ from an outside source named beside the check.
 
 from __future__ import annotations
 
-from pathlib import Path
+import os
 
-import numpy as np
-import pandas as pd
-import pytest
+# numba's thread pool is GNU OpenMP's here, whose idle threads spin for the others at the end of
+# every parallel loop. On a loaded machine the other thread is often descheduled, and each of
+# those waits lasts a time slice: beside one CPU-bound process, tests of many small maps ran 5
+# to 10 times slower (test_fwer: 2.5 s alone, 7 to 34 s loaded; 2.7 to 2.9 s with this). Idle
+# threads sleep instead; results do not depend on the threads (bitwise, DEVELOPERS.md). Set
+# before numba starts its threads; the processes and Dask workers the tests start inherit it.
+os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
-DESIGN = """\
-[data]
-trials = "trials.csv"
-subjects = "subjects.csv"
-channels = "channels.tsv"
-epochs = "epochs/{{subject}}.npy"
-time_start = -0.1
-sampling_rate = 100.0
-{extra_data}
-[subject_model]
-formula = "{formula}"
-levels = {{ condition = ["a", "b", "c"] }}
+from pathlib import Path  # noqa: E402
 
-[group_model]
-formula = "1"
+import pytest  # noqa: E402
 
-{tests}
-"""
-
-DEFAULT_TESTS = """\
-[[test]]
-name = "b-vs-a"
-subject_contrast = "condition[T.b]"
-correction = "holm"
-"""
-
-
-def write_study(root: Path, *, n_subjects: int = 10, n_trials: int = 30, n_channels: int = 4,
-                n_times: int = 8, n_freqs: int | None = None, seed: int = 0,
-                formula: str = "condition + intensity", tests: str = DEFAULT_TESTS,
-                effect: float = 0.0, dtype=np.float32, with_epoch_column: bool = True,
-                extra_data: str = "") -> Path:
-    """Write a small study (conditions a/b/c, a covariate 'intensity', groups 'x'/'y', age)
-    and its design file; return the design file's path.
-
-    ``effect`` is added to condition b epochs at channel 1, time samples 2-4, so tests can
-    check that something planted is found.
-    """
-    rng = np.random.default_rng(seed)
-    root.mkdir(parents=True, exist_ok=True)
-    (root / "epochs").mkdir(exist_ok=True)
-    rows = []
-    for i in range(n_subjects):
-        s = f"s{i + 1:02d}"
-        cond = np.array(["a", "b", "c"])[np.arange(n_trials) % 3]
-        rng.shuffle(cond)
-        shape = (n_trials, n_channels) + ((n_freqs,) if n_freqs else ()) + (n_times,)
-        y = rng.standard_normal(shape)
-        y[cond == "b", 1, ..., 2:5] += effect
-        np.save(root / "epochs" / f"{s}.npy", y.astype(dtype))
-        intensity = rng.normal(50, 10, n_trials).round(2)
-        for j in range(n_trials):
-            rows.append({"subject": s, "epoch": j, "condition": cond[j], "intensity": intensity[j],
-                         "rt": round(float(rng.uniform(0.3, 0.9)), 3)})
-    trials = pd.DataFrame(rows)
-    if not with_epoch_column:
-        trials = trials.drop(columns="epoch")
-    trials.to_csv(root / "trials.csv", index=False)
-    pd.DataFrame({"subject": [f"s{i + 1:02d}" for i in range(n_subjects)],
-                  "group": ["x", "y"] * (n_subjects // 2) + ["x"] * (n_subjects % 2),
-                  "age": rng.integers(20, 60, n_subjects)}).to_csv(root / "subjects.csv", index=False)
-    names = ["Fz", "Cz", "Pz", "Oz", "C3", "C4", "P3", "P4"][:n_channels]
-    names += [f"E{k}" for k in range(len(names), n_channels)]
-    pd.DataFrame({"name": names}).to_csv(root / "channels.tsv", sep="\t", index=False)
-    if n_freqs and "frequencies" not in extra_data:
-        extra_data += f"\nfrequencies = {[float(4 + 2 * k) for k in range(n_freqs)]}\n"
-    design = root / "design.toml"
-    design.write_text(DESIGN.format(formula=formula, tests=tests, extra_data=extra_data))
-    return design
+from glmeeg.testing import write_study  # noqa: E402
 
 
 @pytest.fixture

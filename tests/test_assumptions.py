@@ -4,7 +4,7 @@ import numpy as np
 import scipy.stats
 from typer.testing import CliRunner
 
-from conftest import write_study
+from glmeeg.testing import write_study
 from glmeeg.group_level.assumptions import group_checks, outlying_trials, robust_z
 from glmeeg.cli import app
 

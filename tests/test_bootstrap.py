@@ -5,7 +5,7 @@ import pytest
 import scipy.stats
 
 import glmeeg
-from conftest import write_study
+from glmeeg.testing import write_study
 from glmeeg.group_level.bootstrap import bootstrap_interval
 
 

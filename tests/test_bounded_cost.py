@@ -5,19 +5,25 @@ and whose CPU time is limited to 5 s (``setrlimit``): a runaway (a formula that 
 expand into millions of terms, a dotted key whose parsing grows with its square, a table of
 200,000 columns) is killed by the limit and fails the test. No timing is asserted; the limits
 make a runaway fail. Each case must end in one line on stderr and exit code 2.
+
+The children are independent, so the module starts them together (as many at a time as the
+machine has cores, each under its own limits) and each test then checks its own case's.
 """
 
 from __future__ import annotations
 
+import os
 import resource
 import subprocess
 import sys
 from pathlib import Path
+from types import SimpleNamespace
 
 import pytest
 
-from conftest import write_study
-from test_bad_input import SMALL
+from glmeeg.testing import HANG_TIMEOUT, SMALL_STUDY, write_study
+
+pytestmark = pytest.mark.slow  # a child process per case
 
 MEMORY = 500 * 2**20  # bytes of address space
 CPU_SECONDS = 5
@@ -28,9 +34,27 @@ def _limits() -> None:  # runs in the child before it starts Python
     resource.setrlimit(resource.RLIMIT_CPU, (CPU_SECONDS, CPU_SECONDS + 1))
 
 
-def _check(design: Path, cwd: Path) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "glmeeg", "check", str(design)], capture_output=True,
-                          text=True, cwd=cwd, preexec_fn=_limits)
+def _start_check(design: Path, cwd: Path) -> SimpleNamespace:
+    """``glmeeg check DESIGN`` in a child under the limits, its output in files beside it (no
+    pipe to drain while other children run)."""
+    out, err = open(cwd / "stdout.txt", "w+"), open(cwd / "stderr.txt", "w+")
+    proc = subprocess.Popen([sys.executable, "-m", "glmeeg", "check", str(design)], stdout=out,
+                            stderr=err, text=True, cwd=cwd, preexec_fn=_limits)
+    return SimpleNamespace(proc=proc, out=out, err=err)
+
+
+def _finish(child: SimpleNamespace) -> SimpleNamespace:
+    try:
+        child.proc.wait(timeout=HANG_TIMEOUT)  # RLIMIT_CPU cannot stop a child that hangs idle
+    except subprocess.TimeoutExpired:
+        child.proc.kill()
+        child.proc.wait()
+    texts = []
+    for fh in (child.out, child.err):
+        fh.seek(0)
+        texts.append(fh.read())
+        fh.close()
+    return SimpleNamespace(returncode=child.proc.returncode, stdout=texts[0], stderr=texts[1])
 
 
 VARS = "abcdefghijklmnopqrstuv"  # 22 names
@@ -106,12 +130,41 @@ CASES = [
 ]
 
 
-@pytest.mark.parametrize(("mutate", "fragments"), [pytest.param(m, f, id=i) for i, m, f in CASES])
-def test_costly_input_is_refused_within_the_limits(tmp_path, mutate, fragments):
-    root = tmp_path / "study"
-    design = write_study(root, **SMALL)
-    mutate(root, design)
-    proc = _check(design, tmp_path)
+CONTROL = "control"  # the unchanged study
+
+
+@pytest.fixture(scope="module")
+def checks(tmp_path_factory, request) -> dict:
+    """Each selected case's study, mutated, and the result of its child's check, by case id.
+
+    The children run side by side, at most one per core; each is waited for in the order
+    started, from this (the main) thread, so ``preexec_fn`` runs in no threaded child.
+    """
+    mutations = {case: mutate for case, mutate, _ in CASES} | {CONTROL: None}
+    selected = {item.callspec.id if hasattr(item, "callspec") else CONTROL
+                for item in request.session.items if item.module is request.module}
+    todo = [case for case in mutations if case in selected]
+    window = max(1, os.cpu_count() or 1)
+    running: list = []
+    results = {}
+    for case in todo + [None] * window:
+        if case is not None:
+            folder = tmp_path_factory.mktemp(case)
+            root = folder / "study"
+            design = write_study(root, **SMALL_STUDY)
+            if mutations[case] is not None:
+                mutations[case](root, design)
+            running.append((case, _start_check(design, folder)))
+        if running and (case is None or len(running) >= window):
+            done, child = running.pop(0)
+            results[done] = _finish(child)
+    return results
+
+
+@pytest.mark.parametrize("case", [pytest.param(c, id=c) for c, _, _ in CASES])
+def test_costly_input_is_refused_within_the_limits(checks, case):
+    fragments = next(f for c, _, f in CASES if c == case)
+    proc = checks[case]
     # A child killed by RLIMIT_CPU (SIGXCPU) or out of memory does not exit with 2.
     assert proc.returncode == 2, (proc.returncode, proc.stderr[-2000:])
     assert proc.stdout == ""
@@ -121,10 +174,9 @@ def test_costly_input_is_refused_within_the_limits(tmp_path, mutate, fragments):
         assert f in proc.stderr, (f, proc.stderr)
 
 
-def test_the_limits_let_a_normal_check_through(tmp_path):
+def test_the_limits_let_a_normal_check_through(checks):
     """The control: the same limits do not stop an ordinary check (the cases fail for their
     input, not for the limits)."""
-    design = write_study(tmp_path / "study", **SMALL)
-    proc = _check(design, tmp_path)
+    proc = checks[CONTROL]
     assert proc.returncode == 0, proc.stderr
     assert "design OK" in proc.stdout

@@ -16,9 +16,11 @@ import json
 import logging
 import os
 import shutil
+import struct
 import subprocess
 import sys
 import zipfile
+import zlib
 from pathlib import Path
 from types import SimpleNamespace
 
@@ -27,14 +29,13 @@ import pytest
 from numpy.lib import format as npy_format
 from typer.testing import CliRunner
 
-from conftest import write_study
+from glmeeg.testing import HANG_TIMEOUT, SMALL_STUDY, run_glmeeg, write_study
 from glmeeg.subject_level.cache import CACHE_FOLDER, FitCache
 from glmeeg.cli import app
 from glmeeg.results import load_test_results
 from glmeeg.subject_level.jobs import FIT_FORMAT, SubjectFit
 
-# 6 subjects x 12 trials x 3 channels x 5 times: every run takes about a second.
-SMALL = dict(n_subjects=6, n_trials=12, n_channels=3, n_times=5, seed=7)
+# SMALL_STUDY: 6 subjects x 12 trials x 3 channels x 5 times; every run takes about a second.
 SHAPE = (4, 15)  # design columns (intercept, b, c, intensity) x points (3 channels x 5 times)
 VICTIM = "s03"
 
@@ -82,7 +83,7 @@ def _sha(betas: np.ndarray) -> str:
 @pytest.fixture(scope="module")
 def original(tmp_path_factory) -> SimpleNamespace:
     root = tmp_path_factory.mktemp("cache-integrity")
-    design = write_study(root / "study", **SMALL)
+    design = write_study(root / "study", **SMALL_STUDY)
     out = root / "out"
     result = CliRunner().invoke(app, ["run", str(design), "--out", str(out), "-q", "--no-report"])
     assert result.exit_code == 0, result.output
@@ -311,20 +312,46 @@ finally:
 BOMB_SHAPE = (5, 5 * 10**7)  # 2 GB of float64 zeros: more than LIMIT, inflated or allocated
 
 
+def _zip_member(name: bytes, method: int, crc: int, data: bytes, size: int, offset: int):
+    """Local header + data, and the central-directory record, of one zip member (APPNOTE 4.3;
+    every size below 4 GiB, so no zip64 record)."""
+    fields = (20, 0, method, 0, 0x21, crc, len(data), size, len(name))  # version 2.0, 1980-01-01
+    local = struct.pack("<IHHHHHIIIHH", 0x04034B50, *fields, 0) + name + data
+    central = struct.pack("<IHHHHHHIIIHHHHHII", 0x02014B50, 20, *fields, 0, 0, 0, 0, 0, offset) + name
+    return local, central
+
+
 def _deflate_bomb(path: Path, meta: dict) -> None:
-    """An entry whose betas member inflates to BOMB_SHAPE zeros; about 2 MB on disk."""
-    zeros = bytes(1 << 24)
-    with zipfile.ZipFile(path, "w", compression=zipfile.ZIP_DEFLATED, compresslevel=6) as zf:
-        with zf.open("betas.npy", "w", force_zip64=True) as fh:
-            npy_format.write_array_header_1_0(fh, {"shape": BOMB_SHAPE, "fortran_order": False,
-                                                    "descr": "<f8"})
-            left = 8 * BOMB_SHAPE[0] * BOMB_SHAPE[1]
-            while left:  # streamed: the test itself never holds more than 16 MiB
-                fh.write(zeros[:min(left, len(zeros))])
-                left -= min(left, len(zeros))
-        zf.writestr("meta.npy", _meta_npy(meta), compress_type=zipfile.ZIP_STORED)
+    """An entry whose betas member inflates to BOMB_SHAPE zeros; about 2 MB on disk.
+
+    Deflating 2 GB takes seconds, so 16 MiB of zeros are deflated once and the block repeated:
+    after a full flush the compressor starts afresh, so each chunk's block is the same bytes and
+    the blocks concatenate into one valid stream (RFC 1951; zlib's Z_FULL_FLUSH)."""
+    header = io.BytesIO()
+    npy_format.write_array_header_1_0(header, {"shape": BOMB_SHAPE, "fortran_order": False,
+                                               "descr": "<f8"})
+    chunk = bytes(1 << 24)
+    repeats, rest = divmod(8 * BOMB_SHAPE[0] * BOMB_SHAPE[1], len(chunk))
+    deflate = zlib.compressobj(6, zlib.DEFLATED, -15)  # raw deflate, as zip members are
+    head = deflate.compress(header.getvalue()) + deflate.flush(zlib.Z_FULL_FLUSH)
+    block = deflate.compress(chunk) + deflate.flush(zlib.Z_FULL_FLUSH)
+    data = head + block * repeats + deflate.compress(bytes(rest)) + deflate.flush()
+    crc = zlib.crc32(header.getvalue())
+    for _ in range(repeats):
+        crc = zlib.crc32(chunk, crc)
+    crc = zlib.crc32(bytes(rest), crc)
+    size = len(header.getvalue()) + repeats * len(chunk) + rest
+    meta_bytes = _meta_npy(meta)
+    betas = _zip_member(b"betas.npy", 8, crc, data, size, 0)
+    stored = _zip_member(b"meta.npy", 0, zlib.crc32(meta_bytes), meta_bytes, len(meta_bytes),
+                         len(betas[0]))
+    central = betas[1] + stored[1]
+    end = struct.pack("<IHHHHIIH", 0x06054B50, 0, 0, 2, 2, len(central),
+                      len(betas[0]) + len(stored[0]), 0)
+    path.write_bytes(betas[0] + stored[0] + central + end)
 
 
+@pytest.mark.slow  # a real glmeeg process
 def test_deflate_bomb_is_refused_before_inflating(original, tmp_path):
     out = tmp_path / "out"
     shutil.copytree(original.out, out)
@@ -336,7 +363,7 @@ def test_deflate_bomb_is_refused_before_inflating(original, tmp_path):
         assert zf.getinfo("betas.npy").file_size > LIMIT
     peak = tmp_path / "peak"
     proc = subprocess.run([sys.executable, "-c", RUN_LIMITED, str(LIMIT), str(original.design), str(out),
-                           str(peak)], capture_output=True, text=True, timeout=300)
+                           str(peak)], capture_output=True, text=True, timeout=HANG_TIMEOUT)
     assert proc.returncode == 0, proc.stderr[-3000:]
     assert "Traceback" not in proc.stderr
     # Refused on the file's size (2 MB where the shape allows 70 kB) before the zip is opened;
@@ -345,14 +372,14 @@ def test_deflate_bomb_is_refused_before_inflating(original, tmp_path):
     assert int(peak.read_text()) * 1024 < LIMIT  # implied by the limit; the figure is in the report
 
 
+@pytest.mark.slow  # a real glmeeg process
 def test_file_that_is_not_an_entry_is_refitted_in_a_real_process(original, tmp_path):
     """Outside the test runner too (the real stderr, warnings shown): one note line."""
     out = tmp_path / "out"
     shutil.copytree(original.out, out)
     victim = original.entries[VICTIM]
     _times_1000(out / CACHE_FOLDER / f"{victim.key}.npz", victim, original.entries)
-    proc = subprocess.run([sys.executable, "-m", "glmeeg", "run", str(original.design), "--out", str(out),
-                           "--no-report"], capture_output=True, text=True, timeout=300)
+    proc = run_glmeeg("run", original.design, "--out", out, "--no-report")
     assert proc.returncode == 0, proc.stderr
     _check_rerun(original, out, proc.stderr, "digest mismatch")
 

@@ -56,6 +56,7 @@ def design(tmp_path: Path) -> Path:
                        seed=11, effect=1.0, tests=TESTS)
 
 
+@pytest.mark.slow  # a run with its report
 def test_run_writes_one_folder_per_test(design, tmp_path):
     out = tmp_path / "out"
     result = invoke("run", design, "--out", out)
@@ -83,6 +84,7 @@ def test_run_writes_one_folder_per_test(design, tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["out", "study"]
 
 
+@pytest.mark.slow  # a run with its report
 def test_run_quiet_prints_nothing(design, tmp_path):
     result = invoke("run", design, "--out", tmp_path / "out", "--quiet")
     assert result.exit_code == 0, result.output
@@ -90,6 +92,7 @@ def test_run_quiet_prints_nothing(design, tmp_path):
     assert (tmp_path / "out" / "run.json").is_file()
 
 
+@pytest.mark.slow  # a run with its report
 def test_run_into_an_empty_folder(design, tmp_path):
     out = tmp_path / "empty"
     out.mkdir()
@@ -116,6 +119,7 @@ def test_check_describes_and_creates_nothing(design, tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["study"]
 
 
+@pytest.mark.slow  # a run with its report
 def test_show_run_folder_and_test_folder(design, tmp_path):
     out = tmp_path / "out"
     assert invoke("run", design, "--out", out, "-q").exit_code == 0
@@ -160,6 +164,7 @@ def test_help_keeps_imports_light():
     assert proc.stdout.strip() == ""
 
 
+@pytest.mark.slow  # three runs with their reports
 def test_rerun_replaces_the_earlier_result(design, tmp_path):
     out = tmp_path / "out"
     assert invoke("run", design, "--out", out, "-q").exit_code == 0
@@ -192,6 +197,7 @@ def _nan_in_last_subject(root: Path, design: Path) -> None:
 
 @pytest.mark.parametrize("breakage", [_break_design_key, _nan_in_last_subject],
                          ids=["design-error", "data-error-while-fitting"])
+@pytest.mark.slow  # a run with its report
 def test_failed_run_leaves_earlier_result_intact(design, tmp_path, breakage):
     out = tmp_path / "out"
     assert invoke("run", design, "--out", out, "-q").exit_code == 0

@@ -12,6 +12,7 @@ certificate from Dask's configuration.
 
 from __future__ import annotations
 
+import functools
 import operator
 import os
 import signal
@@ -31,15 +32,11 @@ from glmeeg.errors import ExecutionError
 from glmeeg.pipeline import run_analysis
 from glmeeg.results import load_test_results
 from glmeeg.demo import write_demo_study
+from glmeeg.testing import HANG_TIMEOUT, assert_results_identical
 
 # Two clusters at once (the module's and one a test starts) share the default HTTP port; Dask
 # moves the second one elsewhere and says so.
 pytestmark = pytest.mark.filterwarnings("ignore:Port 8787 is already in use:UserWarning")
-
-
-ARRAYS = ("estimate", "standard_error", "statistic", "p", "p_corrected", "significant", "effect_size",
-          "effect_size_corrected", "effect_size_low", "effect_size_high", "p_permutation", "tfce",
-          "cluster", "null_distribution", "subject_estimates", "residual_skewness", "normality_p")
 
 
 @pytest.fixture(scope="module")
@@ -80,35 +77,23 @@ def own_cluster():
         yield backend
 
 
-def assert_identical(a, b) -> None:
-    """Every array of every test equal bit for bit (NaN where NaN), and the same clusters."""
-    assert [t.name for t in a.tests] == [t.name for t in b.tests]
-    for ta, tb in zip(a.tests, b.tests):
-        for name in ARRAYS:
-            x, y = getattr(ta, name), getattr(tb, name)
-            assert (x is None) == (y is None), (ta.name, name)
-            if x is not None:
-                assert x.dtype == y.dtype and x.shape == y.shape, (ta.name, name)
-                assert x.tobytes() == y.tobytes(), (ta.name, name)
-        assert ta.clusters == tb.clusters, ta.name
-        assert ta.resampling == tb.resampling, ta.name
-    assert a.subjects == b.subjects
-
-
+@pytest.mark.slow  # a Dask cluster of worker processes
 def test_local_cluster_equals_in_process(study, in_process, client):
     assert len(client.scheduler_info()["workers"]) == 2
     on_dask = run_analysis(study, client=client)
-    assert_identical(in_process, on_dask)
+    assert_results_identical(on_dask, in_process)
     # The demo's planted urgency effect is found, so the comparison covers significant points,
     # TFCE values and clusters, not only empty maps.
     assert in_process.test("urgency-high-vs-low").significant.any()
 
 
+@pytest.mark.slow  # a Dask cluster of worker processes
 def test_scheduler_address_equals_in_process(study, in_process, client):
     """The API's scheduler= (what --scheduler passes) connects a client of its own."""
-    assert_identical(in_process, run_analysis(study, scheduler=client.scheduler.address))
+    assert_results_identical(run_analysis(study, scheduler=client.scheduler.address), in_process)
 
 
+@pytest.mark.slow  # a Dask cluster of worker processes
 def test_a_worker_killed_mid_run_changes_nothing(study, in_process, client):
     """SIGKILL one worker process while it holds subject fits: Dask reruns its tasks on the
     other worker (the nanny restarts the dead one) and the result is bitwise unchanged."""
@@ -125,9 +110,10 @@ def test_a_worker_killed_mid_run_changes_nothing(study, in_process, client):
 
     on_dask = run_analysis(study, client=client, progress=progress)
     assert killed and killed[0][1] >= 1
-    assert_identical(in_process, on_dask)
+    assert_results_identical(on_dask, in_process)
 
 
+@pytest.mark.slow  # a Dask cluster of worker processes
 def test_workers_option_starts_a_local_cluster(study, in_process, tmp_path):
     """The CLI's --workers 2 (a LocalCluster it starts and stops) writes the same results."""
     out = tmp_path / "out"
@@ -141,7 +127,15 @@ def test_workers_option_starts_a_local_cluster(study, in_process, tmp_path):
             assert x.tobytes() == getattr(saved[t.name], name).tobytes(), (t.name, name)
 
 
-def test_unreachable_scheduler_is_one_line_exit_2(study, tmp_path):
+@pytest.mark.slow  # a Dask client retrying a refused connection until its timeout
+def test_unreachable_scheduler_is_one_line_exit_2(study, tmp_path, monkeypatch):
+    # Nothing listens on port 9, so every connection attempt is refused and Dask retries until
+    # the client's timeout (10 s by default): waiting for the failure is all the timeout bounds
+    # here, and 2 s give the same error sooner. run_analysis looks open_backend up when called.
+    import glmeeg.parallel
+
+    monkeypatch.setattr(glmeeg.parallel, "open_backend",
+                        functools.partial(glmeeg.parallel.open_backend, timeout=2.0))
     out = tmp_path / "out"
     result = CliRunner().invoke(app, ["run", str(study), "--out", str(out),
                                       "--scheduler", "tcp://127.0.0.1:9"])
@@ -167,6 +161,7 @@ def test_missing_dask_is_a_clear_error(study, monkeypatch, tmp_path):
     assert result.stderr.startswith("error: --workers 2 needs Dask's distributed scheduler")
 
 
+@pytest.mark.slow  # a Dask cluster of worker processes
 def test_a_scheduler_without_workers_is_one_error():
     from glmeeg.parallel import open_backend
 
@@ -181,6 +176,7 @@ def _die(_shared, _item):
     os._exit(3)
 
 
+@pytest.mark.slow  # a Dask cluster of worker processes
 def test_a_task_whose_worker_dies_on_every_try_is_one_error(client):
     """A task that kills its worker each time: after Dask's allowed failures the run stops
     with one ExecutionError naming the task, not a hang or a Dask traceback."""
@@ -188,13 +184,17 @@ def test_a_task_whose_worker_dies_on_every_try_is_one_error(client):
 
     with pytest.raises(ExecutionError, match=r"^subject s99: the Dask worker running it died on every try"):
         DaskBackend(client).map(_die, [0], labels=["subject s99"])
-    client.wait_for_workers(2, timeout=60)
+    # The nannies restart the killed workers; on a loaded machine that may take minutes, so the
+    # bound only guards against a hang (seen: 60 s were not enough on a busy 2-core machine).
+    client.wait_for_workers(2, timeout=HANG_TIMEOUT)
 
 
-# A client's connection attempt fails at once when refused; the timeout only bounds a hang.
-REFUSED_TIMEOUT = 20
+# A client's connection attempt fails at once when refused; the timeout only bounds a hang (and
+# the positive control's connection, which a loaded machine may slow down).
+REFUSED_TIMEOUT = HANG_TIMEOUT
 
 
+@pytest.mark.slow  # a Dask cluster of worker processes
 def test_the_workers_cluster_refuses_clients_without_the_runs_certificate(own_cluster):
     """Nobody but glmeeg's client can connect to (or submit work to) its local cluster."""
     address = own_cluster.client.scheduler.address
@@ -208,7 +208,7 @@ def test_the_workers_cluster_refuses_clients_without_the_runs_certificate(own_cl
     # below are refusals of the credentials, not of any connection.
     with distributed.Client(address, security=own_cluster.security, timeout=REFUSED_TIMEOUT,
                             set_as_default=False) as own:
-        assert own.submit(operator.add, 1, 2).result(timeout=60) == 3
+        assert own.submit(operator.add, 1, 2).result(timeout=HANG_TIMEOUT) == 3
 
     # (a) No credentials, plain TCP: the TLS listener drops the connection, which Dask reports
     # as CommClosedError (ConnectionResetError seen; distributed/comm/tcp.py,
@@ -238,6 +238,7 @@ def test_the_workers_cluster_refuses_clients_without_the_runs_certificate(own_cl
     assert own_cluster.map(operator.add, [1, 2], shared=10) == [11, 12]
 
 
+@pytest.mark.slow  # a Dask cluster of worker processes
 def test_a_tls_scheduler_takes_its_certificate_from_dasks_configuration(own_cluster, tmp_path):
     """--scheduler tls://... with the client's certificate in DASK_DISTRIBUTED__COMM__TLS__...
     environment variables (what a user of an existing TLS cluster sets) connects and runs."""
@@ -255,7 +256,7 @@ def test_a_tls_scheduler_takes_its_certificate_from_dasks_configuration(own_clus
                DASK_DISTRIBUTED__COMM__TLS__CLIENT__CERT=str(files["cert"]),
                DASK_DISTRIBUTED__COMM__TLS__CLIENT__KEY=str(files["key"]))
     proc = subprocess.run([sys.executable, "-c", USE_TLS_SCHEDULER, own_cluster.client.scheduler.address],
-                          env=env, capture_output=True, text=True, timeout=600)
+                          env=env, capture_output=True, text=True, timeout=HANG_TIMEOUT)
     assert proc.returncode == 0, proc.stderr
     assert proc.stdout.strip() == "DaskBackend [11, 12]", proc.stdout
 
@@ -268,6 +269,7 @@ with open_backend(scheduler=sys.argv[1]) as backend:
 """
 
 
+@pytest.mark.slow  # a Dask cluster of worker processes
 def test_a_tls_scheduler_without_a_configured_certificate_is_one_line_exit_2(study, own_cluster,
                                                                              tmp_path):
     """Without Dask TLS configuration a tls:// client has no ssl_context, on which Dask's

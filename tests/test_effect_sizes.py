@@ -81,7 +81,7 @@ def test_size_labels_follow_cohens_conventions():
 
 
 def test_cluster_effect_size_is_the_test_of_the_cluster_average(tmp_path):
-    from conftest import write_study
+    from glmeeg.testing import write_study
 
     tests = '''
 [[test]]

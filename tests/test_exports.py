@@ -10,7 +10,7 @@ import pytest
 from typer.testing import CliRunner
 
 import glmeeg
-from conftest import write_study
+from glmeeg.testing import write_study
 from glmeeg.cli import app
 from glmeeg.results import load_netcdf, read_netcdf, summary_schema
 from glmeeg.results.models import _ARRAYS, _OPTIONAL_ARRAYS

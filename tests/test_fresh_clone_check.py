@@ -15,6 +15,8 @@ from pathlib import Path
 
 import pytest
 
+from glmeeg.testing import HANG_TIMEOUT
+
 ROOT = Path(__file__).resolve().parents[1]
 SCRIPT = ROOT / ".ci" / "fresh-clone-check"
 
@@ -25,7 +27,7 @@ pytestmark = pytest.mark.skipif(shutil.which("bash") is None or shutil.which("gi
 
 def test_the_check_lists_the_readme_two_commands_in_order():
     assert os.access(SCRIPT, os.X_OK)
-    out = subprocess.run([str(SCRIPT), "--list"], capture_output=True, text=True, timeout=60)
+    out = subprocess.run([str(SCRIPT), "--list"], capture_output=True, text=True, timeout=HANG_TIMEOUT)
     assert out.returncode == 0, out.stderr
     commands = out.stdout.splitlines()
     # The README shows them as the only two ```bash blocks of "## Two commands".
@@ -37,5 +39,5 @@ def test_the_check_lists_the_readme_two_commands_in_order():
 
 
 def test_the_check_refuses_arguments_it_does_not_know():
-    out = subprocess.run([str(SCRIPT), "--fast"], capture_output=True, text=True, timeout=60)
+    out = subprocess.run([str(SCRIPT), "--fast"], capture_output=True, text=True, timeout=HANG_TIMEOUT)
     assert out.returncode == 2 and out.stderr.startswith("usage: ")

@@ -74,6 +74,7 @@ def null_rejections() -> dict[str, int]:
 
 
 @pytest.mark.parametrize("method", ["max", "cluster", "tfce"])
+@pytest.mark.slow  # a null simulation of 600 permutation tests
 def test_family_wise_error_rate_is_alpha(null_rejections, method):
     # Exact binomial 99.9 % acceptance interval around 0.05 for 200 datasets: 2 to 21
     # rejections (1 % to 10.5 %); three corrections checked, so a false alarm in well under 1 %
@@ -83,6 +84,7 @@ def test_family_wise_error_rate_is_alpha(null_rejections, method):
     assert lo <= null_rejections[method] <= hi, (method, null_rejections[method], (lo, hi))
 
 
+@pytest.mark.slow  # a null simulation of 600 permutation tests
 def test_uncorrected_error_rate_is_far_above_alpha(null_rejections):
     # 240 correlated points tested at 0.05 each: some point is "significant" in most null
     # datasets. Far above the upper end of the interval (21 of 200) is the point of correcting.

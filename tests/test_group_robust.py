@@ -7,7 +7,7 @@ from statsmodels.stats.robust_compare import TrimmedMean
 from typer.testing import CliRunner
 
 import glmeeg
-from conftest import write_study
+from glmeeg.testing import write_study
 from glmeeg.cli import app
 from glmeeg.errors import ModelError
 from glmeeg.group_level.robust import trimmed_test, welch_test, winsorized_normal_sd

@@ -20,7 +20,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from conftest import write_study
+from glmeeg.testing import write_study
 from glmeeg.errors import GlmeegError
 from glmeeg.formula import build_design, contrast_matrix, design_matrix
 from glmeeg.pipeline import plan_analysis
@@ -78,6 +78,7 @@ contrasts = st.one_of(
 )
 
 
+@pytest.mark.slow  # a hypothesis search
 @SETTINGS
 @given(table=tables(), formula=formulas, levels=level_maps, contrast=contrasts,
        split=st.integers(0, 25))
@@ -108,6 +109,7 @@ def test_formula_layer_raises_only_its_own_errors(table, formula, levels, contra
     assert len(C.labels) == C.matrix.shape[0]
 
 
+@pytest.mark.slow  # a hypothesis search
 @SETTINGS
 @given(formula=st.sampled_from(INJECTIONS), contrast=st.sampled_from(INJECTIONS))
 def test_injection_strings_never_run(formula, contrast):
@@ -162,6 +164,7 @@ def _apply(frame: pd.DataFrame, edit) -> pd.DataFrame:
     return frame
 
 
+@pytest.mark.slow  # a hypothesis search
 @SETTINGS
 @given(trial_edits=st.lists(edits(), max_size=3), subject_edits=st.lists(edits(), max_size=2),
        drop_rows=st.lists(st.integers(0, 40), max_size=4),

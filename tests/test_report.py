@@ -9,7 +9,7 @@ import struct
 import pytest
 
 import glmeeg
-from conftest import write_study
+from glmeeg.testing import write_study
 from glmeeg.report import render_report
 
 TESTS = '''
@@ -66,6 +66,7 @@ def test_a_figure_that_cannot_be_drawn_becomes_a_note(run, monkeypatch):
     assert "<h3>Clusters and regions</h3>" in page
 
 
+@pytest.mark.slow  # runs with their reports
 def test_run_writes_the_report_and_report_rewrites_it(tmp_path):
     from typer.testing import CliRunner
 

@@ -14,6 +14,8 @@ import subprocess
 
 import pytest
 
+from glmeeg.testing import HANG_TIMEOUT
+
 CHECK = """<script>
 window.addEventListener("load", () => {
   const imgs = Array.from(document.images);
@@ -57,7 +59,7 @@ def test_demo_report_loads_every_figure_in_chromium(tmp_path):
            "--disable-background-networking", "--disable-component-update", "--disable-sync",
            f"--user-data-dir={tmp_path / 'profile'}", "--virtual-time-budget=10000", "--dump-dom",
            probe.as_uri()]
-    out = subprocess.run(cmd, capture_output=True, text=True, timeout=120).stdout
+    out = subprocess.run(cmd, capture_output=True, text=True, timeout=HANG_TIMEOUT).stdout
     found = re.search(r'<pre id="browser-check">images (\d+) loaded (\d+)\n(.*?)</pre>', out, re.S)
     assert found, out[-2000:]
     total, loaded, rows = int(found.group(1)), int(found.group(2)), found.group(3)

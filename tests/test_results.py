@@ -11,7 +11,7 @@ from pydantic import ValidationError
 from typer.testing import CliRunner
 
 import glmeeg
-from conftest import write_study
+from glmeeg.testing import write_study
 from glmeeg.cli import app
 from glmeeg.results.models import _ARRAYS, _OPTIONAL_ARRAYS
 
@@ -173,6 +173,7 @@ def test_to_xarray_channel_time(run):
     assert ds.attrs["kind"] == "F" and ds.attrs["test"] == "condition"
 
 
+@pytest.mark.slow  # a 4-D study run twice, once with its report
 def test_four_d_study_end_to_end(run_tf):
     run, out = run_tf
     t = run.test("b-vs-a")
@@ -193,6 +194,7 @@ def test_four_d_study_end_to_end(run_tf):
     pd.testing.assert_frame_equal(frame[["channel", "frequency", "time"]], t.axes.point_labels())
 
 
+@pytest.mark.slow  # a 4-D study run twice, once with its report
 def test_to_xarray_four_d(run_tf):
     pytest.importorskip("xarray")
     run, _ = run_tf

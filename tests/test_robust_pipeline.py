@@ -7,7 +7,7 @@ import statsmodels.api as sm
 from typer.testing import CliRunner
 
 import glmeeg
-from conftest import write_study
+from glmeeg.testing import write_study
 from glmeeg.cli import app
 from glmeeg.subject_level.robust import fit_robust
 
@@ -88,6 +88,7 @@ def test_negative_trial_weights_are_refused(tmp_path):
     assert result.exit_code == 2 and "non-negative trial weights" in result.stderr
 
 
+@pytest.mark.slow  # the demo study, fitted twice
 def test_robust_fit_recovers_the_demo_urgency_effect_better_than_least_squares(tmp_path):
     # The demo keeps blinks (3-12 % of kept trials, 80-200 µV at the frontal pole) and a few
     # spikes and drifts in the trials the rejection let through (glmeeg.demo). Truth: the

@@ -3,7 +3,7 @@
 import numpy as np
 
 import glmeeg
-from conftest import write_study
+from glmeeg.testing import write_study
 
 
 def test_planted_effect_found_and_saved(tmp_path):
@@ -11,7 +11,7 @@ def test_planted_effect_found_and_saved(tmp_path):
     run = glmeeg.run_analysis(design)
     t = run.test("b-vs-a")
     sig = t.map("significant")
-    # The effect is planted at channel 1, samples 2-4 only (see conftest.write_study).
+    # The effect is planted at channel 1, samples 2-4 only (see glmeeg.testing.write_study).
     assert sig[1, 2:5].all()
     assert not sig[[0, 2, 3]].any()
     out = glmeeg.write_run(run, tmp_path / "out")
