@@ -393,7 +393,7 @@ def power_command(
     if design is None:
         raise GlmeegError("--design: required: one of one-sample, paired, two-sample, f")
     n = _one_n(n)
-    solve, alpha = _what_to_solve(solve, alpha, effect_size=effect_size, n=n, power=target_power)
+    alpha = _alpha_to_use(solve, alpha, effect_size=effect_size, n=n, power=target_power)
     try:
         solution = solve_power(design=design, effect_size=effect_size, n=n, alpha=alpha,
                                power=target_power, alternative=alternative,
@@ -427,8 +427,9 @@ def power_command(
         typer.echo(table.to_string(index=False, float_format=lambda x: f"{x:.4f}"))
 
 
-def _what_to_solve(solve: str | None, alpha: float | None, **given) -> tuple[str | None, float | None]:
-    """The quantity to solve and the alpha to use, from what the user left out."""
+def _alpha_to_use(solve: str | None, alpha: float | None, **given) -> float | None:
+    """The alpha to use (None when it is solved), after checking that exactly one quantity is
+    left to solve."""
     from ..errors import GlmeegError
 
     names = {"effect_size": "effect-size", "n": "n", "power": "power"}
@@ -449,7 +450,7 @@ def _what_to_solve(solve: str | None, alpha: float | None, **given) -> tuple[str
     if not missing and solve != "alpha":
         raise GlmeegError("nothing to solve: leave out one of --effect-size, --n, --power "
                           "(or give all three and --solve alpha)")
-    return solve, (defaults.ALPHA if solve != "alpha" and alpha is None else alpha)
+    return defaults.ALPHA if solve != "alpha" and alpha is None else alpha
 
 
 _SIMULATE_HELP = ("Simulate the power of a saved test's own design at other sample sizes.\n\n"

@@ -93,7 +93,6 @@ class FalseDiscoveryRate(_Settings):
         return "Benjamini-Hochberg false discovery rate over all points"
 
 
-DEFAULT_PERMUTATIONS = defaults.PERMUTATIONS
 DEFAULT_SEED = 20090101
 Resampling = Literal["auto", "sign-flip", "permute"]
 
@@ -101,7 +100,7 @@ Resampling = Literal["auto", "sign-flip", "permute"]
 class _Permutation(_Settings):
     """Settings shared by the permutation-based corrections."""
 
-    permutations: int = Field(DEFAULT_PERMUTATIONS, ge=1, le=10_000_000,
+    permutations: int = Field(defaults.PERMUTATIONS, ge=1, le=10_000_000,
                               description="random resamplings; all of them when the full set is no larger")
     seed: int = Field(DEFAULT_SEED, ge=0, description="seed of this test's random resamplings")
     resampling: Resampling = Field("auto", description="sign-flip, permute, or chosen from the design")
